@@ -1,0 +1,214 @@
+"""Validated configuration: one pydantic model per section, unknown keys rejected with a near match.
+
+Keys marked *fixed* in the design are a contract: ``inputs``, ``output_dir``, ``acquisition.pixel_size_um``,
+``acquisition.frame_interval_s``, ``acquisition.exposure_s``, ``sample.temperature_c``, ``sample.medium``,
+``executor``. Every other section has working automatic defaults.
+"""
+
+from __future__ import annotations
+
+import difflib
+import glob
+import hashlib
+import json
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import ConfigError
+
+_STRICT = ConfigDict(extra="forbid", frozen=True)
+
+
+class AcquisitionConfig(BaseModel):
+    """Camera and timing. Values omitted here may come from OME-TIFF metadata."""
+
+    model_config = _STRICT
+    pixel_size_um: Annotated[float, Field(gt=0)] | None = None
+    frame_interval_s: Annotated[float, Field(gt=0)] | None = None
+    exposure_s: Annotated[float, Field(ge=0)] | None = None  # None: same as frame_interval_s
+
+    @model_validator(mode="after")
+    def _exposure_fits_frame(self):
+        if (
+            self.exposure_s is not None
+            and self.frame_interval_s is not None
+            and self.exposure_s > self.frame_interval_s * (1 + 1e-9)
+        ):
+            raise ValueError(
+                f"exposure_s must be <= frame_interval_s; got exposure_s={self.exposure_s} > "
+                f"frame_interval_s={self.frame_interval_s}. The shutter cannot stay open longer than a frame."
+            )
+        return self
+
+
+class MediumViscosity(BaseModel):
+    """A medium given by a fixed viscosity."""
+
+    model_config = _STRICT
+    viscosity_mpa_s: Annotated[float, Field(gt=0)]
+
+
+class SampleConfig(BaseModel):
+    """The sample's physical conditions."""
+
+    model_config = _STRICT
+    temperature_c: Annotated[float, Field(gt=-30, lt=150)] = 25.0
+    temperature_sd_c: Annotated[float, Field(ge=0)] = 0.0
+    medium: Literal["water"] | MediumViscosity | dict[str, Any] | str = "water"
+    wall_distance_um: Annotated[float, Field(gt=0)] | None = None
+
+
+class DetectionConfig(BaseModel):
+    """Spot finding. Every setting is 'auto' (None) unless given."""
+
+    model_config = _STRICT
+    spot_diameter_px: Annotated[int, Field(ge=3, le=99)] | None = None
+    min_mass: Annotated[float, Field(ge=0)] | None = None
+    chunk_frames: Annotated[int, Field(ge=1)] = 200
+
+
+class LinkingConfig(BaseModel):
+    """Joining spots into tracks."""
+
+    model_config = _STRICT
+    max_step_px: Annotated[float, Field(gt=0)] | None = None
+    max_gap_frames: Annotated[int, Field(ge=0, le=20)] = 2
+    min_track_points: Annotated[int, Field(ge=2)] = 10
+
+
+class AnalysisConfig(BaseModel):
+    """MSD, fits and motion verdicts."""
+
+    model_config = _STRICT
+    n_dims: Literal[1, 2] = 2
+    estimator: Literal["auto", "covariance", "msd_fit", "likelihood"] = "auto"
+    max_lag_frames: Annotated[int, Field(ge=1)] | None = None
+    drift_correction: bool = True
+    min_track_points: Annotated[int, Field(ge=2)] | None = None
+    seed: int = 0
+
+
+class ExecutorConfig(BaseModel):
+    """Where the batch runs."""
+
+    model_config = _STRICT
+    kind: Literal["local", "serial", "dask"] = "local"
+    n_workers: Annotated[int, Field(ge=1)] | None = None
+    address: str | None = None
+
+
+class Config(BaseModel):
+    """A whole run: inputs, outputs, acquisition, sample and stage settings."""
+
+    model_config = _STRICT
+    inputs: list[str]
+    output_dir: str = "results"
+    acquisition: AcquisitionConfig = AcquisitionConfig()
+    sample: SampleConfig = SampleConfig()
+    detection: DetectionConfig = DetectionConfig()
+    linking: LinkingConfig = LinkingConfig()
+    analysis: AnalysisConfig = AnalysisConfig()
+    executor: ExecutorConfig = ExecutorConfig()
+    # Folder the config file lives in; relative paths resolve against it. Not a YAML key.
+    base_dir: str = Field(default=".", exclude=True)
+    source: str = Field(default="<config>", exclude=True)
+
+    @field_validator("inputs", mode="before")
+    @classmethod
+    def _inputs_list(cls, v):
+        if isinstance(v, str):
+            v = [v]
+        if not v:
+            raise ValueError("inputs must list at least one file or glob; got an empty list.")
+        return v
+
+    def resolve_path(self, path: str) -> Path:
+        """Resolve a path from the config against the config file's folder."""
+        p = Path(path).expanduser()
+        return p if p.is_absolute() else Path(self.base_dir) / p
+
+    def input_paths(self) -> list[Path]:
+        """Expand the input globs (sorted, duplicates removed) against the config folder."""
+        seen: dict[str, Path] = {}
+        for pattern in self.inputs:
+            full = self.resolve_path(pattern)
+            matches = sorted(glob.glob(str(full), recursive=True)) if glob.has_magic(str(full)) else [str(full)]
+            for m in matches:
+                seen.setdefault(str(Path(m).resolve()), Path(m))
+        return list(seen.values())
+
+    def output_path(self) -> Path:
+        """The output folder, resolved against the config folder."""
+        return self.resolve_path(self.output_dir)
+
+
+def _all_keys(model: type[BaseModel]) -> list[str]:
+    return [k for k, f in model.model_fields.items() if not f.exclude]
+
+
+def _model_at(loc: tuple) -> type[BaseModel] | None:
+    model: type[BaseModel] | None = Config
+    for part in loc[:-1]:
+        if model is None or not isinstance(part, str) or part not in model.model_fields:
+            return None
+        ann = model.model_fields[part].annotation
+        model = ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
+    return model
+
+
+def _format_errors(exc: ValidationError, source: str) -> str:
+    lines = []
+    for err in exc.errors():
+        loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and ("[" in p or p.startswith("function"))))
+        # pydantic reports union branches; keep names of real keys only
+        key_path = ".".join(str(p) for p in loc) or "(top level)"
+        if err["type"] == "extra_forbidden":
+            model = _model_at(loc)
+            hint = ""
+            if model is not None:
+                near = difflib.get_close_matches(str(loc[-1]), _all_keys(model), n=1, cutoff=0.5)
+                hint = f" (did you mean '{near[0]}'?)" if near else f" (valid keys: {', '.join(_all_keys(model))})"
+            lines.append(f"{source}: {key_path}: unknown key{hint}")
+        elif err["type"] == "missing":
+            lines.append(f"{source}: {key_path}: required key is missing")
+        else:
+            lines.append(f"{source}: {key_path}: {err['msg']}; got {err.get('input')!r}")
+    return "\n".join(dict.fromkeys(lines))
+
+
+def config_from_dict(data: dict, *, base_dir: str | Path = ".", source: str = "<config>") -> Config:
+    """Validate a config given as a dict (as parsed from YAML)."""
+    if not isinstance(data, dict):
+        raise ConfigError(f"{source}: the config must be a mapping of keys to values; got {type(data).__name__}.")
+    try:
+        return Config(**data, base_dir=str(base_dir), source=str(source))
+    except ValidationError as exc:
+        raise ConfigError(_format_errors(exc, str(source))) from None
+
+
+def load_config(path: str | Path) -> Config:
+    """Load and validate a YAML config file.
+
+    Raises
+    ------
+    ConfigError
+        When the file is missing, is not valid YAML, or has unknown keys, wrong types or out-of-range values;
+        the message names the file and the key path.
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"{p}: config file not found. Give the path of a YAML file (see configs/demo.yaml).")
+    try:
+        data = yaml.safe_load(p.read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{p}: not valid YAML: {exc}") from None
+    return config_from_dict(data or {}, base_dir=p.resolve().parent, source=str(p))
+
+
+def config_hash(cfg: Config) -> str:
+    """SHA-256 of the config's content (paths as written), used for provenance and resume."""
+    blob = json.dumps(cfg.model_dump(mode="json"), sort_keys=True, default=str).encode()
+    return hashlib.sha256(blob).hexdigest()
