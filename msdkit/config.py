@@ -209,6 +209,7 @@ def load_config(path: str | Path) -> Config:
 
 
 def config_hash(cfg: Config) -> str:
-    """SHA-256 of the config's content (paths as written), used for provenance and resume."""
-    blob = json.dumps(cfg.model_dump(mode="json"), sort_keys=True, default=str).encode()
+    """SHA-256 of the settings that change results (not output_dir or executor), for provenance and resume."""
+    data = cfg.model_dump(mode="json", exclude={"output_dir", "executor"})
+    blob = json.dumps(data, sort_keys=True, default=str).encode()
     return hashlib.sha256(blob).hexdigest()
