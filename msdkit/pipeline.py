@@ -1,0 +1,393 @@
+"""One input through the stages: read → detect → link → drift → MSD → fit → classify → size → write.
+
+This module holds no science: it turns config sections into plain keyword arguments, calls the stage
+functions in order and writes their results. See DEVELOPERS.md for the stage contracts.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import schema
+from ._version import __version__
+from .errors import InputError, expected_got
+
+log = logging.getLogger(__name__)
+
+TABLE_SUFFIXES = (".csv", ".parquet", ".pq", ".tsv")
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    """Everything measured on one sample's tracks."""
+
+    tracks: pd.DataFrame
+    track_fits: pd.DataFrame
+    ensemble_msd: pd.DataFrame
+    summary: dict[str, Any]
+    size_table: pd.DataFrame | None = None
+
+
+@dataclass(frozen=True)
+class InputOutcome:
+    """The batch-level outcome of one input (one row of batch_summary.csv)."""
+
+    stack: str
+    status: str
+    error: str = ""
+    n_tracks: int = 0
+    D_um2_s: float = math.nan
+    alpha: float = math.nan
+    radius_nm: float = math.nan
+    flags: list[str] = field(default_factory=list)
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+def _finite_or_none(value):
+    if value is None:
+        return None
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_finite_or_none(v) for v in value]
+    try:
+        f = float(value)
+    except (TypeError, ValueError):
+        return value
+    return f if math.isfinite(f) else None
+
+
+def _as_dict(obj) -> dict[str, Any]:
+    if obj is None:
+        return {}
+    if hasattr(obj, "to_dict"):
+        return obj.to_dict()
+    if dataclasses.is_dataclass(obj):
+        out = {}
+        for f in dataclasses.fields(obj):
+            v = getattr(obj, f.name)
+            if isinstance(v, pd.DataFrame):
+                continue
+            out[f.name] = v
+        return out
+    return dict(obj)
+
+
+def analyze_tracks(
+    tracks: pd.DataFrame,
+    *,
+    frame_interval_s: float,
+    exposure_s: float | None = None,
+    temperature_c: float = 25.0,
+    temperature_sd_c: float = 0.0,
+    medium: Any = "water",
+    wall_distance_um: float | None = None,
+    n_dims: int = 2,
+    estimator: str = "auto",
+    max_lag_frames: int | None = None,
+    drift_correction: bool = True,
+    min_track_points: int | None = None,
+    seed: int = 0,
+) -> AnalysisResult:
+    """Analyse a track table: drift, MSD, D and alpha with intervals, motion classes, flags and sizes.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Columns track, frame, x_um, y_um (time_s is recomputed from frame × frame_interval_s).
+    frame_interval_s : float, s
+    exposure_s : float, s, default=frame_interval_s
+        Shutter-open time per frame (0 = instantaneous samples); sets the motion-blur coefficient.
+    temperature_c : float, °C
+    medium : "water", {"viscosity_mpa_s": ...} or another medium accepted by
+        :func:`msdkit.hydro.medium_viscosity_mpa_s`.
+
+    Returns
+    -------
+    AnalysisResult
+    """
+    from . import classify, drift, fit, hydro, msd, sizing
+
+    if not frame_interval_s or frame_interval_s <= 0:
+        raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s,
+                                      "Set acquisition.frame_interval_s in the config."))
+    exposure_s = frame_interval_s if exposure_s is None else float(exposure_s)
+    tracks = tracks.sort_values(["track", "frame"], kind="stable").reset_index(drop=True)
+    tracks["time_s"] = tracks["frame"].to_numpy(float) * frame_interval_s
+    if min_track_points:
+        counts = tracks.groupby("track")["frame"].transform("size")
+        tracks = tracks[counts >= min_track_points].reset_index(drop=True)
+    n_tracks = int(tracks["track"].nunique())
+    if n_tracks == 0:
+        raise InputError("no tracks to analyse: every track was shorter than the minimum length or the table "
+                         "was empty. Check detection/linking settings or lower analysis.min_track_points.")
+
+    viscosity_mpa_s = float(hydro.medium_viscosity_mpa_s(medium, temperature_c))
+
+    drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)
+    corrected = False
+    if drift_correction and drift_est.safe_to_subtract:
+        tracks = drift.remove_drift(tracks, drift_est)
+        corrected = True
+
+    kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+    track_fits = fit.fit_tracks(tracks, method=estimator, **kw)
+    sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, **kw)
+    # Short tracks borrow the sample's localisation error for a steadier per-track alpha.
+    if getattr(sample_fit, "sigma_um", None) is not None and np.isfinite(sample_fit.sigma_um):
+        track_fits = fit.fit_tracks(tracks, method=estimator, sigma_um=max(float(sample_fit.sigma_um), 0.0), **kw)
+    ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
+
+    classes = classify.classify_tracks(
+        tracks, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
+        sigma_um=getattr(sample_fit, "sigma_um", None), track_fits=track_fits,
+    )
+    extra_cols = [c for c in classes.columns if c != "track" and c not in track_fits.columns or c == "motion_class"]
+    track_fits = track_fits.drop(columns=[c for c in extra_cols if c in track_fits.columns and c != "track"])
+    track_fits = track_fits.merge(classes[["track", *[c for c in extra_cols if c != "track"]]], on="track", how="left")
+    motion = classify.sample_motion(
+        tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
+        track_fits=track_fits,
+    )
+
+    radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
+    D_tracks = track_fits["D_um2_s"].to_numpy(float)
+    if wall_distance_um is not None:
+        D_tracks = hydro.wall_corrected_D_um2_s(D_tracks, wall_distance_um=wall_distance_um, **radius_kw)
+    track_fits["radius_nm"] = hydro.stokes_einstein_radius_nm(D_tracks, **radius_kw)
+
+    sample_D = float(sample_fit.D_um2_s)
+    D_lo, D_hi = (float(v) for v in sample_fit.D_ci95_um2_s)
+    size = hydro.stokes_einstein_size(
+        sample_D, D_ci95_um2_s=(D_lo, D_hi), temperature_c=temperature_c, temperature_sd_c=temperature_sd_c,
+        medium=medium, wall_distance_um=wall_distance_um,
+    )
+    dist = sizing.size_distribution(
+        track_fits, temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s,
+        frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims,
+    )
+
+    flags = list(motion.flags)
+    drift_v = [float(v) for v in drift_est.velocity_um_s]
+    summary: dict[str, Any] = {
+        "D_um2_s": sample_D,
+        "D_ci95_um2_s": [D_lo, D_hi],
+        "alpha": float(getattr(motion, "alpha", sample_fit.alpha)),
+        "alpha_ci95": [float(v) for v in getattr(motion, "alpha_ci95", sample_fit.alpha_ci95)],
+        "radius_nm": size["radius_nm"],
+        "radius_ci95_nm": size["radius_ci95_nm"],
+        "diameter_nm": size["diameter_nm"],
+        "diameter_ci95_nm": size["diameter_ci95_nm"],
+        "n_tracks": n_tracks,
+        "n_positions": int(len(tracks)),
+        "flags": flags,
+        "viscosity_mpa_s": viscosity_mpa_s,
+        "temperature_c": float(temperature_c),
+        "drift_um_s": drift_v,
+        "drift_corrected": corrected,
+        "localization_sd_um": _finite_or_none(getattr(sample_fit, "sigma_um", None)),
+        "estimator": getattr(sample_fit, "method", estimator),
+        "frame_interval_s": frame_interval_s,
+        "exposure_s": exposure_s,
+        "motion": _as_dict(motion),
+        "sample_fit": _as_dict(sample_fit),
+        "size_distribution": dist.to_dict() if hasattr(dist, "to_dict") else {},
+    }
+    return AnalysisResult(
+        tracks=tracks, track_fits=track_fits, ensemble_msd=ens, summary=summary,
+        size_table=getattr(dist, "table", None),
+    )
+
+
+def _acquisition(cfg, metadata: dict[str, Any], path: Path) -> tuple[float | None, float, float]:
+    acq = cfg.acquisition
+    pixel = acq.pixel_size_um if acq.pixel_size_um is not None else metadata.get("pixel_size_um")
+    dt = acq.frame_interval_s if acq.frame_interval_s is not None else metadata.get("frame_interval_s")
+    if dt is None:
+        raise InputError(
+            f"{path.name}: the frame interval is unknown: neither acquisition.frame_interval_s in the config nor "
+            "the file's metadata gives it. Set acquisition.frame_interval_s (seconds between frames)."
+        )
+    exposure = acq.exposure_s if acq.exposure_s is not None else metadata.get("exposure_s")
+    if exposure is None or exposure > dt:
+        exposure = dt
+    return pixel, float(dt), float(exposure)
+
+
+def movie_to_tracks(
+    path: Path,
+    cfg,
+    *,
+    progress: Callable[[int, int], None] | None = None,
+) -> tuple[pd.DataFrame, dict[str, Any]]:
+    """Detect and link particles in a movie, streaming it in chunks; return tracks in µm and the settings used."""
+    from . import detect, link
+    from .io.stacks import open_stack
+
+    det, lnk = cfg.detection, cfg.linking
+    with open_stack(path) as stack:
+        pixel, dt, exposure = _acquisition(cfg, stack.metadata, path)
+        if pixel is None:
+            raise InputError(
+                f"{path.name}: the pixel size is unknown: neither acquisition.pixel_size_um in the config nor the "
+                "file's OME metadata gives it. Set acquisition.pixel_size_um (µm per pixel)."
+            )
+        n_frames = stack.n_frames
+        sample_idx = np.unique(np.linspace(0, n_frames - 1, min(n_frames, 40)).astype(int))
+        sample = np.stack([stack.read_frames(int(i), int(i) + 1)[0] for i in sample_idx])
+        settings = detect.choose_detection_settings(
+            sample, spot_diameter_px=det.spot_diameter_px, min_mass=det.min_mass,
+        )
+        chunks = []
+        done = 0
+        for first, frames in stack.iter_chunks(det.chunk_frames):
+            chunks.append(detect.locate_spots(frames, settings=settings, first_frame=first))
+            done += len(frames)
+            if progress is not None:
+                progress(done, n_frames)
+    spots = pd.concat(chunks, ignore_index=True) if chunks else schema.empty_frame(schema.SPOT_COLUMNS)
+    tracks_px, link_settings = link.link_spots(
+        spots, max_step_px=lnk.max_step_px, max_gap_frames=lnk.max_gap_frames,
+        min_track_points=lnk.min_track_points, frame_interval_s=dt,
+    )
+    tracks = pd.DataFrame({
+        "track": tracks_px["track"].to_numpy(np.int64),
+        "frame": tracks_px["frame"].to_numpy(np.int64),
+        "time_s": tracks_px["frame"].to_numpy(float) * dt,
+        "x_um": tracks_px["x_px"].to_numpy(float) * pixel,
+        "y_um": tracks_px["y_px"].to_numpy(float) * pixel,
+    })
+    for extra in ("mass", "precision_px"):
+        if extra in tracks_px.columns:
+            tracks[extra if extra == "mass" else "precision_um"] = (
+                tracks_px[extra].to_numpy(float) * (pixel if extra == "precision_px" else 1.0)
+            )
+    used = {
+        "acquisition": {"pixel_size_um": pixel, "frame_interval_s": dt, "exposure_s": exposure},
+        "detection": _as_dict(settings),
+        "linking": _as_dict(link_settings),
+        "n_frames": int(n_frames),
+        "n_spots": int(len(spots)),
+    }
+    return tracks, used
+
+
+def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, Any], resolved: dict) -> None:
+    import yaml
+
+    from .io.atomic import write_csv_atomic, write_json_atomic, write_parquet_atomic, write_text_atomic
+
+    stack_dir.mkdir(parents=True, exist_ok=True)
+    write_parquet_atomic(result.tracks[[*schema.TRACK_COLUMNS]], stack_dir / "tracks.parquet")
+    fits = result.track_fits
+    first = [c for c in schema.TRACK_FIT_COLUMNS_REQUIRED if c in fits.columns]
+    write_csv_atomic(fits[first + [c for c in fits.columns if c not in first]], stack_dir / "track_fits.csv")
+    ens = result.ensemble_msd
+    lead = ["lag_s", "msd_um2", "sem_um2", "n_tracks"]
+    write_csv_atomic(ens[lead + [c for c in ens.columns if c not in lead]], stack_dir / "msd_ensemble.csv")
+    if result.size_table is not None:
+        write_csv_atomic(result.size_table, stack_dir / "size_distribution.csv")
+    write_text_atomic(yaml.safe_dump(resolved, sort_keys=False, allow_unicode=True),
+                      stack_dir / "resolved_config.yaml")
+    try:
+        from .report.figures import write_stack_figures
+
+        write_stack_figures(stack_dir, result)
+    except Exception as exc:  # a figure must never cost the numbers
+        log.warning("%s: figures not written: %s", stack_dir.name, exc)
+    write_json_atomic(summary, stack_dir / "summary.json")
+
+
+def process_input(
+    input_path: Path,
+    cfg,
+    stack_dir: Path,
+    *,
+    stack_name: str,
+    progress: Callable[[int, int], None] | None = None,
+) -> InputOutcome:
+    """Run one input (movie or track table) through every stage and write its folder of results.
+
+    Raises on failure (the batch records the error and goes on with the other inputs).
+    """
+    from .config import config_hash
+    from .io.atomic import file_sha256
+
+    input_path = Path(input_path)
+    if not input_path.exists():
+        raise InputError(f"{input_path}: input file not found. Check the inputs list and the config's folder.")
+    if input_path.suffix.lower() in TABLE_SUFFIXES:
+        from .io.tables import read_track_table
+
+        dt = cfg.acquisition.frame_interval_s
+        if dt is None:
+            raise InputError(f"{input_path.name}: a track table needs acquisition.frame_interval_s in the config.")
+        tracks = read_track_table(input_path, pixel_size_um=cfg.acquisition.pixel_size_um, frame_interval_s=dt)
+        exposure = cfg.acquisition.exposure_s if cfg.acquisition.exposure_s is not None else dt
+        used: dict[str, Any] = {"acquisition": {"pixel_size_um": cfg.acquisition.pixel_size_um,
+                                                "frame_interval_s": dt, "exposure_s": exposure}}
+    else:
+        tracks, used = movie_to_tracks(input_path, cfg, progress=progress)
+    acq = used["acquisition"]
+    an, smp = cfg.analysis, cfg.sample
+    result = analyze_tracks(
+        tracks, frame_interval_s=acq["frame_interval_s"], exposure_s=acq["exposure_s"],
+        temperature_c=smp.temperature_c, temperature_sd_c=smp.temperature_sd_c,
+        medium=smp.medium.model_dump() if hasattr(smp.medium, "model_dump") else smp.medium,
+        wall_distance_um=smp.wall_distance_um, n_dims=an.n_dims, estimator=an.estimator,
+        max_lag_frames=an.max_lag_frames, drift_correction=an.drift_correction,
+        min_track_points=an.min_track_points, seed=an.seed,
+    )
+    provenance = {
+        "msdkit_version": __version__,
+        "config_hash": config_hash(cfg),
+        "input_file": str(input_path),
+        "input_sha256": file_sha256(input_path),
+    }
+    summary = {**result.summary, "stack": stack_name, "settings_used": used, "provenance": provenance}
+    summary = _jsonable(summary)
+    resolved = cfg.model_dump(mode="json")
+    resolved["acquisition"] = {**resolved["acquisition"], **acq}
+    resolved["chosen_automatically"] = _jsonable({k: v for k, v in used.items() if k != "acquisition"})
+    resolved["provenance"] = provenance
+    _write_outputs(stack_dir, result, summary, resolved)
+    s = result.summary
+    return InputOutcome(
+        stack=stack_name, status="ok", error="", n_tracks=int(s["n_tracks"]), D_um2_s=float(s["D_um2_s"]),
+        alpha=float(s["alpha"]), radius_nm=float(s["radius_nm"] if s["radius_nm"] is not None else math.nan),
+        flags=list(s["flags"]),
+        extra={
+            "D_ci95_lo_um2_s": s["D_ci95_um2_s"][0], "D_ci95_hi_um2_s": s["D_ci95_um2_s"][1],
+            "diameter_nm": s["diameter_nm"], "localization_sd_um": s["localization_sd_um"],
+            "viscosity_mpa_s": s["viscosity_mpa_s"], "temperature_c": s["temperature_c"],
+        },
+    )
+
+
+def _jsonable(obj):
+    """Convert numpy scalars/arrays and non-finite floats into JSON-safe values (NaN → None)."""
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return [_jsonable(v) for v in obj.tolist()]
+    if isinstance(obj, (np.bool_, bool)):
+        return bool(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, pd.DataFrame):
+        return None
+    return obj
