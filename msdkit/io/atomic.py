@@ -1,0 +1,192 @@
+"""Atomic file writers and streamed file checksums.
+
+Every writer puts the data into a temporary file in the destination folder, flushes it to disk (``fsync``)
+and renames it over the destination with :func:`os.replace`. A reader therefore sees either the old file or
+the complete new one, never a half-written file, even if the writing process is killed (SIGKILL, power cut)
+mid-way. A killed writer can leave its temporary file behind; its name starts with a dot and contains
+``TEMP_MARKER``, and :func:`remove_stale_temp_files` deletes such leftovers (the batch runner does so before
+it starts).
+
+All writers take the data first and the destination path second, create missing parent folders and return
+the destination as a :class:`~pathlib.Path`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import os
+import secrets
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import IO, Any
+
+#: Part of the name of every temporary file the writers create: ``.<name>.msdkit-tmp-<random>``.
+TEMP_MARKER = ".msdkit-tmp-"
+
+_CHUNK_BYTES = 1 << 20
+
+
+def _fsync_dir(folder: Path) -> None:
+    """Make a rename durable by syncing the folder entry (POSIX only; ignored where unsupported)."""
+    if os.name != "posix":
+        return
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+@contextmanager
+def _atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; on success sync it and rename it over ``path``.
+
+    If the body raises, the temporary file is removed and the destination is left untouched.
+    """
+    dest = Path(path)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dest.parent / f".{dest.name}{TEMP_MARKER}{secrets.token_hex(6)}"
+    try:
+        yield tmp
+        fd = os.open(tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, dest)
+    except BaseException:
+        try:
+            tmp.unlink()
+        except FileNotFoundError:
+            pass
+        raise
+    _fsync_dir(dest.parent)
+
+
+def _write_with(path: str | os.PathLike, mode: str, writer: Callable[[IO], None], **open_kw) -> Path:
+    with _atomic_path(path) as tmp:
+        with open(tmp, mode, **open_kw) as fh:
+            writer(fh)
+    return Path(path)
+
+
+def write_bytes_atomic(data: bytes, path: str | os.PathLike) -> Path:
+    """Write ``data`` to ``path`` atomically (temporary file, fsync, rename)."""
+    return _write_with(path, "wb", lambda fh: fh.write(data))
+
+
+def write_text_atomic(text: str, path: str | os.PathLike, *, encoding: str = "utf-8") -> Path:
+    """Write ``text`` to ``path`` atomically; newlines are written as given (no platform translation)."""
+    return _write_with(path, "w", lambda fh: fh.write(text), encoding=encoding, newline="")
+
+
+def to_jsonable(obj: Any) -> Any:
+    """Convert ``obj`` into plain JSON types.
+
+    NaN and ±inf become ``None`` (JSON has no such numbers); numpy scalars and arrays, tuples, sets, paths,
+    dataclasses, pandas Series and timestamps are converted; dict keys become strings. Anything else that
+    JSON cannot hold raises ``TypeError``.
+    """
+    import numpy as np
+
+    if obj is None or isinstance(obj, (str, bool)):
+        return obj
+    if isinstance(obj, int) and not isinstance(obj, bool):
+        return int(obj)
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    if isinstance(obj, dict):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, set, frozenset)):
+        items = sorted(obj, key=str) if isinstance(obj, (set, frozenset)) else obj
+        return [to_jsonable(v) for v in items]
+    if isinstance(obj, np.ndarray):
+        return [to_jsonable(v) for v in obj.tolist()]
+    if isinstance(obj, os.PathLike):
+        return os.fspath(obj)
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: to_jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if hasattr(obj, "isoformat"):  # datetime, pandas Timestamp
+        return obj.isoformat()
+    if hasattr(obj, "tolist"):  # pandas Series / Index
+        return to_jsonable(obj.tolist())
+    raise TypeError(f"cannot write a {type(obj).__name__} to JSON: {obj!r:.80}")
+
+
+def write_json_atomic(obj: Any, path: str | os.PathLike, *, indent: int | None = 2) -> Path:
+    """Write ``obj`` as JSON to ``path`` atomically.
+
+    The object is passed through :func:`to_jsonable` first: NaN/inf → ``null``, numpy types → Python
+    numbers. The result is strict JSON (``allow_nan=False``) that any JSON reader accepts.
+    """
+    text = json.dumps(to_jsonable(obj), indent=indent, allow_nan=False, ensure_ascii=False) + "\n"
+    return write_text_atomic(text, path)
+
+
+def write_csv_atomic(df, path: str | os.PathLike, *, index: bool = False, **to_csv_kw) -> Path:
+    """Write a DataFrame to CSV atomically (no index by default; NaN written as an empty field)."""
+    return _write_with(
+        path, "w", lambda fh: df.to_csv(fh, index=index, **to_csv_kw), encoding="utf-8", newline=""
+    )
+
+
+def write_parquet_atomic(df, path: str | os.PathLike, *, compression: str = "zstd") -> Path:
+    """Write a DataFrame to Parquet atomically with pyarrow (the index is not stored)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(df, preserve_index=False)
+    with _atomic_path(path) as tmp:
+        pq.write_table(table, tmp, compression=compression)
+    return Path(path)
+
+
+def file_sha256(path: str | os.PathLike, *, chunk_bytes: int = _CHUNK_BYTES) -> str:
+    """Return the SHA-256 hex digest of a file, read in chunks (memory does not grow with file size).
+
+    A folder (an image-sequence input) is hashed over its files' relative names and contents, in sorted order.
+    """
+    p = Path(path)
+    h = hashlib.sha256()
+    if p.is_dir():
+        for f in sorted(q for q in p.rglob("*") if q.is_file()):
+            h.update(f.relative_to(p).as_posix().encode() + b"\0")
+            h.update(bytes.fromhex(file_sha256(f, chunk_bytes=chunk_bytes)))
+        return h.hexdigest()
+    with open(p, "rb") as fh:
+        while chunk := fh.read(chunk_bytes):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def remove_stale_temp_files(folder: str | os.PathLike, *, recursive: bool = False) -> list[Path]:
+    """Delete temporary files left in ``folder`` by writers that were killed; return what was deleted."""
+    root = Path(folder)
+    if not root.is_dir():
+        return []
+    pattern = f".*{TEMP_MARKER}*"
+    found = root.rglob(pattern) if recursive else root.glob(pattern)
+    removed = []
+    for f in found:
+        try:
+            f.unlink()
+            removed.append(f)
+        except (FileNotFoundError, IsADirectoryError, PermissionError):
+            pass
+    return removed
