@@ -45,10 +45,101 @@ class AcquisitionConfig(BaseModel):
 
 
 class MediumViscosity(BaseModel):
-    """A medium given by a fixed viscosity."""
+    """A medium given by a fixed viscosity (the same at every temperature)."""
 
     model_config = _STRICT
     viscosity_mpa_s: Annotated[float, Field(gt=0)]
+
+
+class MediumViscosityTable(BaseModel):
+    """A medium given by a table of temperature → viscosity; ln η is interpolated linearly in 1/T."""
+
+    model_config = _STRICT
+    temperature_c: Annotated[list[Annotated[float, Field(gt=-30, lt=150)]], Field(min_length=1)]
+    viscosity_mpa_s: Annotated[list[Annotated[float, Field(gt=0)]], Field(min_length=1)]
+
+    @model_validator(mode="after")
+    def _same_length(self):
+        if len(self.temperature_c) != len(self.viscosity_mpa_s):
+            raise ValueError(
+                f"the viscosity table needs one viscosity per temperature; got {len(self.temperature_c)} "
+                f"temperatures and {len(self.viscosity_mpa_s)} viscosities. Make the two lists equally long."
+            )
+        if len(set(self.temperature_c)) != len(self.temperature_c):
+            raise ValueError(f"the viscosity table's temperatures must all differ; got {self.temperature_c}.")
+        return self
+
+
+class GlycerolByMass(BaseModel):
+    """Glycerol–water mixture given by the mass fraction of glycerol (0–1); Cheng (2008) viscosity."""
+
+    model_config = _STRICT
+    glycerol_mass_fraction: Annotated[float, Field(ge=0, le=1)]
+
+
+class GlycerolByVolume(BaseModel):
+    """Glycerol–water mixture given by the volume fraction of glycerol (0–1, volumes before mixing, 20 °C)."""
+
+    model_config = _STRICT
+    glycerol_volume_fraction: Annotated[float, Field(ge=0, le=1)]
+
+
+class BeadCalibratedMedium(BaseModel):
+    """An unknown medium calibrated with beads of known diameter whose D was measured in it at the sample
+    temperature: η = k_B T / (3 π d_ref D_ref)."""
+
+    model_config = _STRICT
+    reference_diameter_nm: Annotated[float, Field(gt=0)]
+    reference_D_um2_s: Annotated[float, Field(gt=0)]
+
+
+#: Named media (``medium: water``) and their accepted spellings.
+MEDIUM_NAMES = ("water", "heavy_water", "saline", "pbs")
+_MEDIUM_ALIASES = {"h2o": "water", "d2o": "heavy_water", "heavy water": "heavy_water", "heavy-water": "heavy_water"}
+_MEDIUM_MODELS: tuple[type[BaseModel], ...] = (
+    MediumViscosity, MediumViscosityTable, GlycerolByMass, GlycerolByVolume, BeadCalibratedMedium,
+)
+MediumModel = MediumViscosity | MediumViscosityTable | GlycerolByMass | GlycerolByVolume | BeadCalibratedMedium
+_MEDIUM_FORMS_TEXT = (
+    "water | heavy_water | saline | pbs | {viscosity_mpa_s: 3.0} | {glycerol_mass_fraction: 0.4} | "
+    "{glycerol_volume_fraction: 0.4} | {temperature_c: [20, 30], viscosity_mpa_s: [1.2, 0.9]} | "
+    "{reference_diameter_nm: 100, reference_D_um2_s: 4.3}"
+)
+
+
+def _parse_medium(value: Any) -> Any:
+    """Turn a YAML medium (name or mapping) into a canonical name or a validated medium model."""
+    if isinstance(value, BaseModel):
+        return value
+    if isinstance(value, str):
+        key = value.strip().lower()
+        key = _MEDIUM_ALIASES.get(key, key)
+        if key in MEDIUM_NAMES:
+            return key
+        near = difflib.get_close_matches(key, [*MEDIUM_NAMES, *_MEDIUM_ALIASES], n=1, cutoff=0.5)
+        hint = f" (did you mean '{_MEDIUM_ALIASES.get(near[0], near[0])}'?)" if near else ""
+        raise ValueError(f"unknown medium {value!r}{hint}. Valid media: {_MEDIUM_FORMS_TEXT}")
+    if isinstance(value, dict):
+        keys = set(value)
+        for model in _MEDIUM_MODELS:
+            if keys == set(model.model_fields):
+                try:
+                    return model(**value)
+                except ValidationError as exc:
+                    parts = []
+                    for e in exc.errors():
+                        msg = str(e["msg"]).removeprefix("Value error, ")
+                        where = ".".join(str(p) for p in e["loc"])
+                        parts.append(f"{where}: {msg}" if where else msg)
+                    raise ValueError("; ".join(parts)) from None
+        all_keys = sorted({k for m in _MEDIUM_MODELS for k in m.model_fields})
+        unknown = sorted(keys - set(all_keys))
+        if unknown:
+            near = difflib.get_close_matches(unknown[0], all_keys, n=1, cutoff=0.5)
+            hint = f" (did you mean '{near[0]}'?)" if near else ""
+            raise ValueError(f"unknown medium key '{unknown[0]}'{hint}. Valid media: {_MEDIUM_FORMS_TEXT}")
+        raise ValueError(f"the keys {sorted(keys)} do not make one medium. Valid media: {_MEDIUM_FORMS_TEXT}")
+    raise ValueError(f"a medium is a name or a mapping; got {type(value).__name__}. Valid media: {_MEDIUM_FORMS_TEXT}")
 
 
 class SampleConfig(BaseModel):
@@ -57,8 +148,23 @@ class SampleConfig(BaseModel):
     model_config = _STRICT
     temperature_c: Annotated[float, Field(gt=-30, lt=150)] = 25.0
     temperature_sd_c: Annotated[float, Field(ge=0)] = 0.0
-    medium: Literal["water"] | MediumViscosity | dict[str, Any] | str = "water"
+    medium: Literal["water", "heavy_water", "saline", "pbs"] | MediumModel = "water"
     wall_distance_um: Annotated[float, Field(gt=0)] | None = None
+
+    @field_validator("medium", mode="before")
+    @classmethod
+    def _medium_form(cls, v):
+        return _parse_medium(v)
+
+    @model_validator(mode="after")
+    def _medium_covers_temperature(self):
+        from .hydro import medium_viscosity_mpa_s
+
+        try:
+            medium_viscosity_mpa_s(self.medium, self.temperature_c)
+        except ValueError as exc:
+            raise ValueError(f"medium and temperature_c do not fit: {exc}") from None
+        return self
 
 
 class DetectionConfig(BaseModel):
