@@ -85,8 +85,10 @@ class GlycerolByVolume(BaseModel):
 
 
 class BeadCalibratedMedium(BaseModel):
-    """An unknown medium calibrated with beads of known diameter whose D was measured in it at the sample
-    temperature: η = k_B T / (3 π d_ref D_ref)."""
+    """An unknown medium calibrated with beads of known diameter.
+
+    The beads' D must be measured in the medium at the sample temperature; η = k_B T / (3 π d_ref D_ref).
+    """
 
     model_config = _STRICT
     reference_diameter_nm: Annotated[float, Field(gt=0)]
@@ -95,11 +97,15 @@ class BeadCalibratedMedium(BaseModel):
 
 #: Named media (``medium: water``) and their accepted spellings.
 MEDIUM_NAMES = ("water", "heavy_water", "saline", "pbs")
-_MEDIUM_ALIASES = {"h2o": "water", "d2o": "heavy_water", "heavy water": "heavy_water", "heavy-water": "heavy_water"}
+_MEDIUM_ALIASES = {
+    "h2o": "water", "d2o": "heavy_water", "heavy water": "heavy_water", "heavy-water": "heavy_water",
+}
 _MEDIUM_MODELS: tuple[type[BaseModel], ...] = (
     MediumViscosity, MediumViscosityTable, GlycerolByMass, GlycerolByVolume, BeadCalibratedMedium,
 )
-MediumModel = MediumViscosity | MediumViscosityTable | GlycerolByMass | GlycerolByVolume | BeadCalibratedMedium
+MediumModel = (
+    MediumViscosity | MediumViscosityTable | GlycerolByMass | GlycerolByVolume | BeadCalibratedMedium
+)
 _MEDIUM_FORMS_TEXT = (
     "water | heavy_water | saline | pbs | {viscosity_mpa_s: 3.0} | {glycerol_mass_fraction: 0.4} | "
     "{glycerol_volume_fraction: 0.4} | {temperature_c: [20, 30], viscosity_mpa_s: [1.2, 0.9]} | "
@@ -139,7 +145,9 @@ def _parse_medium(value: Any) -> Any:
             hint = f" (did you mean '{near[0]}'?)" if near else ""
             raise ValueError(f"unknown medium key '{unknown[0]}'{hint}. Valid media: {_MEDIUM_FORMS_TEXT}")
         raise ValueError(f"the keys {sorted(keys)} do not make one medium. Valid media: {_MEDIUM_FORMS_TEXT}")
-    raise ValueError(f"a medium is a name or a mapping; got {type(value).__name__}. Valid media: {_MEDIUM_FORMS_TEXT}")
+    raise ValueError(
+        f"a medium is a name or a mapping; got {type(value).__name__}. Valid media: {_MEDIUM_FORMS_TEXT}"
+    )
 
 
 class SampleConfig(BaseModel):
