@@ -1,0 +1,151 @@
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from msdkit.io.atomic import (
+    TEMP_MARKER,
+    file_sha256,
+    remove_stale_temp_files,
+    write_bytes_atomic,
+    write_csv_atomic,
+    write_json_atomic,
+    write_parquet_atomic,
+    write_text_atomic,
+)
+
+
+def _leftovers(folder):
+    return [p.name for p in folder.iterdir() if TEMP_MARKER in p.name]
+
+
+class _FailsMidway:
+    """Writes part of a CSV, then raises, like a writer interrupted by a full disk."""
+
+    def to_csv(self, fh, index=False, **kw):
+        fh.write("a,b\n1,2\n" * 1000)
+        raise OSError("disk full (simulated)")
+
+
+def test_csv_writer_that_raises_midway_leaves_the_old_file_and_no_partial_file(tmp_path):
+    dest = tmp_path / "table.csv"
+    write_text_atomic("old contents\n", dest)
+    with pytest.raises(OSError, match="disk full"):
+        write_csv_atomic(_FailsMidway(), dest)
+    assert dest.read_text() == "old contents\n"
+    assert _leftovers(tmp_path) == []
+
+
+def test_parquet_writer_that_raises_midway_leaves_no_file(tmp_path, monkeypatch):
+    import pyarrow.parquet as pq
+
+    real = pq.write_table
+
+    def half_then_fail(table, where, **kw):
+        real(table.slice(0, 1), where, **kw)  # something lands on disk under the temporary name
+        raise RuntimeError("killed while writing (simulated)")
+
+    monkeypatch.setattr(pq, "write_table", half_then_fail)
+    dest = tmp_path / "tracks.parquet"
+    with pytest.raises(RuntimeError, match="killed while writing"):
+        write_parquet_atomic(pd.DataFrame({"a": np.arange(10)}), dest)
+    assert not dest.exists()
+    assert _leftovers(tmp_path) == []
+
+
+def test_json_writer_that_fails_to_serialise_leaves_the_old_file(tmp_path):
+    dest = tmp_path / "summary.json"
+    write_json_atomic({"D_um2_s": 1.0}, dest)
+    with pytest.raises(TypeError, match="cannot write a object to JSON"):
+        write_json_atomic({"D_um2_s": object()}, dest)
+    assert json.loads(dest.read_text()) == {"D_um2_s": 1.0}
+    assert _leftovers(tmp_path) == []
+
+
+def test_json_writer_turns_nan_and_inf_into_null_and_accepts_numpy_types(tmp_path):
+    dest = write_json_atomic(
+        {"D": np.float64("nan"), "n": np.int32(7), "ci": np.array([1.5, np.inf]), "ok": np.bool_(True),
+         "t": (1, 2.5), "path": tmp_path},
+        tmp_path / "s.json",
+    )
+
+    # Strict JSON (RFC 8259) has no NaN/Infinity tokens: refuse them while parsing.
+    def refuse(token):
+        raise ValueError(token)
+
+    data = json.loads(dest.read_text(), parse_constant=refuse)
+    assert data == {"D": None, "n": 7, "ci": [1.5, None], "ok": True, "t": [1, 2.5], "path": str(tmp_path)}
+
+
+def test_writers_round_trip_tables_and_bytes(tmp_path):
+    df = pd.DataFrame({"track": np.arange(5, dtype=np.int64), "x_um": np.linspace(0, 1, 5) / 3})
+    write_csv_atomic(df, tmp_path / "sub" / "t.csv")  # missing parent folder is created
+    pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "sub" / "t.csv"), df)
+    write_parquet_atomic(df, tmp_path / "t.parquet")
+    pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "t.parquet"), df)
+    write_bytes_atomic(b"\x00\x01", tmp_path / "b.bin")
+    assert (tmp_path / "b.bin").read_bytes() == b"\x00\x01"
+
+
+def test_sha256_matches_the_published_test_vector_and_hashlib_across_chunks(tmp_path):
+    f = tmp_path / "abc.txt"
+    f.write_bytes(b"abc")
+    # FIPS 180-2, Appendix B.1: SHA-256("abc").
+    assert file_sha256(f) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+    data = np.random.default_rng(0).bytes(100_003)
+    g = tmp_path / "big.bin"
+    g.write_bytes(data)
+    assert file_sha256(g, chunk_bytes=4096) == hashlib.sha256(data).hexdigest()
+
+
+def test_remove_stale_temp_files_removes_only_temporary_files(tmp_path):
+    keep = tmp_path / "summary.json"
+    keep.write_text("{}")
+    stale = tmp_path / f".summary.json{TEMP_MARKER}abc123"
+    stale.write_text("{")
+    assert remove_stale_temp_files(tmp_path) == [stale]
+    assert keep.exists() and not stale.exists()
+
+
+_WRITER = textwrap.dedent(
+    """
+    import sys
+    from msdkit.io.atomic import write_bytes_atomic
+    dest = sys.argv[1]
+    i = 0
+    print("ready", flush=True)
+    while True:
+        i += 1
+        block = bytes([i % 251]) * (8 << 20)   # 8 MB of one repeated byte
+        write_bytes_atomic(block, dest)
+    """
+)
+
+
+def test_file_killed_with_sigkill_while_writing_is_old_or_new_never_partial(tmp_path):
+    dest = tmp_path / "data.bin"
+    proc = subprocess.Popen([sys.executable, "-c", _WRITER, str(dest)], stdout=subprocess.PIPE,
+                            cwd=os.getcwd(), env={**os.environ, "PYTHONPATH": os.getcwd()})
+    try:
+        assert proc.stdout.readline().strip() == b"ready"
+        deadline = time.monotonic() + 20
+        while not dest.exists() and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(0.3)  # let it be mid-way through some later write
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        proc.stdout.close()
+    data = dest.read_bytes()
+    assert len(data) == 8 << 20
+    assert data.count(data[:1]) == len(data)  # one complete block, not a mix of two
+    remove_stale_temp_files(tmp_path)
+    assert _leftovers(tmp_path) == []
