@@ -83,8 +83,8 @@ def test_non_numeric_positions_are_reported_with_value_and_row(tmp_path):
 def test_non_numeric_value_far_down_a_long_file_is_reported(tmp_path):
     # pyarrow infers column types from the first block; a bad value later must still be found and named.
     n = 300_000
-    df = pd.DataFrame({"track": np.repeat(np.arange(n // 100), 100), "frame": np.tile(np.arange(100), n // 100),
-                       "x_um": 0.5, "y_um": 0.25})
+    df = pd.DataFrame({"track": np.repeat(np.arange(n // 100), 100),
+                       "frame": np.tile(np.arange(100), n // 100), "x_um": 0.5, "y_um": 0.25})
     text = df.to_csv(index=False)
     text = text + "9999,0,oops,1\n"
     p = _write(tmp_path, text)
@@ -97,7 +97,8 @@ def test_nan_and_empty_values_are_refused(tmp_path):
     with pytest.raises(InputError, match=r"'x_um' has 1 empty or NaN value\(s\) \(first in data row 2\)"):
         read_track_table(p, frame_interval_s=1.0)
     q = tmp_path / "t.parquet"
-    pd.DataFrame({"track": [0, 0], "frame": [0, 1], "x_um": [1.0, np.inf], "y_um": [1.0, 2.0]}).to_parquet(q)
+    bad = pd.DataFrame({"track": [0, 0], "frame": [0, 1], "x_um": [1.0, np.inf], "y_um": [1.0, 2.0]})
+    bad.to_parquet(q)
     with pytest.raises(InputError, match=r"'x_um' has 1 NaN or infinite value\(s\)"):
         read_track_table(q, frame_interval_s=1.0)
 
@@ -119,7 +120,7 @@ def test_fractional_and_negative_frames_are_refused(tmp_path):
 
 def test_pixel_positions_without_pixel_size_are_refused(tmp_path):
     p = _write(tmp_path, "track,frame,x_px,y_px\n0,0,1,1\n")
-    with pytest.raises(InputError, match=r"pixel_size_um .* must be a number > 0 .*; got None. Set acquisition"):
+    with pytest.raises(InputError, match=r"pixel_size_um .* must be a number > 0 .*; got None. Set acq"):
         read_track_table(p, frame_interval_s=1.0)
 
 
