@@ -10,9 +10,9 @@ Steps of :func:`link_spots`
    gone, the distance to an unrelated spot (spots scattered at the observed density). The per-axis step SD and
    the fraction of spots with a partner are fitted by maximum likelihood to these distances; a constant drift
    (the median displacement of the close pairs) is removed first and re-estimated.
-2. **Largest step** ``max_step_px = 4 * step_sd_px`` (a Brownian step exceeds it with probability
-   e^-8 = 3e-4), but at most half the median distance between neighbouring spots in a frame, so that a particle
-   that vanishes is not replaced by a neighbour.
+2. **Largest step** ``max_step_px = 5 * step_sd_px`` (a 2-D Gaussian step exceeds it with probability
+   e^-12.5 = 4e-6; at 4 SD it would be 3e-4, a split every ~3000 steps), but at most half the median distance
+   between neighbouring spots in a frame, so that a particle that vanishes is not replaced by a neighbour.
 3. **Frame-to-frame linking** with trackpy (minimum total squared displacement within each group of competing
    spots; the search shrinks for groups too large to solve), on drift-corrected positions.
 4. **Gap closing**: a track end and a track start ``g`` frames later (``2 <= g <= max_gap_frames + 1``) are joined
@@ -39,7 +39,7 @@ from .errors import InputError, expected_got
 
 __all__ = ["LinkSettings", "link_spots", "estimate_step_sd_px"]
 
-_STEP_FACTOR = 4.0
+_STEP_FACTOR = 5.0
 _SPACING_FRACTION = 0.5
 
 
@@ -226,7 +226,7 @@ def _link_frames(df: pd.DataFrame, max_step: float, drift: np.ndarray) -> np.nda
         work, max_step, pos_columns=["x", "y"], t_column="frame", memory=0,
         adaptive_stop=max(0.05, 0.2 * max_step), adaptive_step=0.9,
     )
-    return linked["particle"].to_numpy(np.int64)
+    return linked["particle"].reindex(work.index).to_numpy(np.int64)  # trackpy may reorder rows
 
 
 def _close_gaps(seg: pd.DataFrame, *, max_step: float, max_gap: int, step_sd: float, drift) -> dict[int, int]:
@@ -317,7 +317,7 @@ def link_spots(
         At least columns ``frame``, ``x_px``, ``y_px`` (as from :func:`msdkit.detect.locate_spots`); other
         columns are carried into the tracks.
     max_step_px : float, px, optional
-        Largest frame-to-frame displacement. Default: 4 x the per-axis step SD estimated from the data, at most
+        Largest frame-to-frame displacement. Default: 5 x the per-axis step SD estimated from the data, at most
         half the median spacing of spots.
     max_gap_frames : int, default=2
         Longest run of missing frames bridged inside a track (0: no gap closing).
@@ -351,7 +351,7 @@ def link_spots(
         raise InputError(expected_got("min_track_points", "an integer >= 2", min_track_points,
                                       "A track needs at least two positions."))
     max_gap_frames, min_track_points = int(max_gap_frames), int(min_track_points)
-    df = spots.reset_index(drop=True)
+    df = spots.sort_values("frame", kind="stable").reset_index(drop=True)
     n_spots = len(df)
     xy = df[["x_px", "y_px"]].to_numpy(float) if n_spots else np.zeros((0, 2))
     frames = df["frame"].to_numpy(np.int64) if n_spots else np.zeros(0, np.int64)
