@@ -1,0 +1,441 @@
+"""Estimators of the diffusion coefficient with localisation error and motion blur, and their precision.
+
+Notation (per axis, frame interval dt, exposure t_E, blur coefficient R = t_E / (6 dt), static localisation
+variance s = sigma^2): steps of consecutive frames have variance b + 2a and lag-one covariance -a with
+
+    b = 2 D dt,    a = s - R b,
+
+so the observed MSD per axis is MSD_n = b n + 2a (Berglund 2010, Phys. Rev. E 82:011917). Everything below
+works in (b, a) and converts at the end: D = b / (2 dt), s = a + R b.
+
+References
+----------
+A. J. Berglund, Phys. Rev. E 82, 011917 (2010), doi:10.1103/PhysRevE.82.011917.
+X. Michalet, Phys. Rev. E 82, 041914 (2010), doi:10.1103/PhysRevE.82.041914.
+C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014),
+doi:10.1103/PhysRevE.89.022726.
+H. Qian, M. P. Sheetz & E. L. Elson, Biophys. J. 60, 910 (1991), doi:10.1016/S0006-3495(91)82125-7.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+import numpy as np
+
+#: Two-sided 95 % standard-normal quantile.
+Z95 = 1.959963984540054
+
+
+def blur_coefficient(frame_interval_s: float, exposure_s: float) -> float:
+    """Motion-blur coefficient R = t_E / (6 dt) for uniform illumination during the exposure (Berglund 2010)."""
+    return float(exposure_s) / (6.0 * float(frame_interval_s))
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Covariance-based estimator
+# ----------------------------------------------------------------------------------------------------------
+
+def covariance_estimate(sum_sq, n_steps, sum_cross, n_pairs, *, n_dims: int, R: float):
+    """Covariance-based estimator (Vestergaard, Blainey & Flyvbjerg 2014) in (b, a) form.
+
+    Parameters
+    ----------
+    sum_sq, n_steps : arrays
+        Sum over steps and axes of squared steps, and the number of steps.
+    sum_cross, n_pairs : arrays
+        Sum over adjacent step pairs and axes of their product, and the number of such pairs.
+
+    Returns
+    -------
+    b, a : arrays (NaN where a track has no adjacent pair of steps)
+
+    Notes
+    -----
+    With m = <dx_k^2> and c = <dx_k dx_(k+1)> per axis: b = 2 dt D = m + 2c and s = R m + (2R - 1) c, so
+    a = s - R b = -c. Both are unbiased for any x, with or without blur.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m = np.asarray(sum_sq, float) / (n_dims * np.asarray(n_steps, float))
+        c = np.asarray(sum_cross, float) / (n_dims * np.asarray(n_pairs, float))
+    return m + 2.0 * c, -c
+
+
+def covariance_variance_coefficients(n_steps, *, n_dims: int):
+    """Var(b_hat) = k_bb b^2 + 2 k_ab a b + k_aa a^2 for the covariance-based estimator.
+
+    From Var(D)/D^2 = [(6 + 4 eps + 2 eps^2)/N + 4 (1 + eps)^2 / N^2] / d with eps = x - 2R = 2a/b
+    (Vestergaard, Blainey & Flyvbjerg 2014, eq. for the variance of the estimator).
+    """
+    N = np.asarray(n_steps, float)
+    kbb = (6.0 / N + 4.0 / N**2) / n_dims
+    kab = (4.0 / N + 8.0 / N**2) / n_dims
+    kaa = (8.0 / N + 16.0 / N**2) / n_dims
+    return kbb, kab, kaa
+
+
+def quadratic_interval(b_hat, s_hat, kbb, kab, kaa, *, R: float, z: float = Z95):
+    """Score-type interval {b : (b_hat - b)^2 <= z^2 Var(b)} for Var quadratic in (b, a), a = s_hat - R b.
+
+    The variance is evaluated at the hypothesised b rather than at the estimate (as in Wilson's interval), so
+    the interval is asymmetric where the estimator's spread grows with D. Returns (lo, hi); hi is +inf when the
+    relative precision is too poor to bound b from above.
+    """
+    b_hat, s_hat = np.asarray(b_hat, float), np.asarray(s_hat, float)
+    # Var(b) with a = s - R b:  q2 b^2 + q1 b + q0
+    q2 = kbb - 2 * R * kab + R * R * kaa
+    q1 = 2 * s_hat * kab - 2 * R * s_hat * kaa
+    q0 = kaa * s_hat * s_hat
+    z2 = z * z
+    A = 1.0 - z2 * q2
+    B = -(2.0 * b_hat + z2 * q1)
+    C = b_hat * b_hat - z2 * q0
+    disc = B * B - 4 * A * C
+    with np.errstate(invalid="ignore", divide="ignore"):
+        root = np.sqrt(np.maximum(disc, 0.0))
+        lo = np.where(A > 0, (-B - root) / (2 * A), np.where(A < 0, (-B + root) / (2 * A), C / -B))
+        hi = np.where(A > 0, (-B + root) / (2 * A), np.inf)
+    # Wald fallback where the quadratic has no real roots (only through round-off)
+    se = np.sqrt(np.maximum(q2 * b_hat**2 + q1 * b_hat + q0, 0.0))
+    bad = ~(disc >= 0) | ~np.isfinite(lo)
+    lo = np.where(bad, b_hat - z * se, lo)
+    hi = np.where(bad & np.isfinite(hi), b_hat + z * se, hi)
+    return lo, hi
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Maximum likelihood on the DST modes of the steps
+# ----------------------------------------------------------------------------------------------------------
+
+_RHO_GRID = np.array([-0.24, -0.2, -0.15, -0.1, -0.05, 0.0, 0.03, 0.07, 0.12, 0.2, 0.3, 0.45, 0.7, 1.0, 1.5,
+                      2.2, 3.3, 5.0, 7.5, 11.0, 17.0, 25.0, 40.0, 60.0, 100.0, 200.0, 500.0, 1000.0])
+
+
+def _loglik(b, a, lam, S, w, d):
+    psi = b[:, None] + a[:, None] * lam
+    ok = np.all((psi > 0) | (w == 0), axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ll = -0.5 * np.sum(w * (d * np.log(np.where(w > 0, psi, 1.0)) + S / np.where(w > 0, psi, 1.0)), axis=1)
+    return np.where(ok, ll, -np.inf)
+
+
+def ml_fit(lam, S, w, *, n_dims: int, R: float = 0.0, s_known=None, max_iter: int = 60):
+    """Maximum-likelihood (b, a) of padded groups of DST modes, one row per track (or per sample).
+
+    Parameters
+    ----------
+    lam, S, w : (n_rows, n_modes) arrays
+        Eigenvalue factors lambda_k, summed squared DST coefficients over the axes, and weights (1 for a
+        real mode, 0 for padding; bootstrap counts also work).
+    n_dims : int
+    R : float
+        Blur coefficient; used only when the localisation variance is known.
+    s_known : array of shape (n_rows,), optional
+        Known static localisation variance per row (µm²): then only b is fitted, with a = s - R b.
+
+    Returns
+    -------
+    b, a : arrays
+    var_b : array
+        Inverse expected Fisher information for b (a profiled out, or known).
+    converged : bool array
+
+    Notes
+    -----
+    Modes are independent N(0, psi_k) per axis with psi_k = b + a lambda_k (Berglund 2010; Vestergaard et al.
+    2014). The log-likelihood -1/2 sum_k w_k [d ln psi_k + S_k / psi_k] is maximised by Fisher scoring, which
+    for variances linear in the parameters is iteratively reweighted least squares of S_k/d on (1, lambda_k)
+    with weights 1/psi_k^2, with step halving to keep every psi_k > 0 and the likelihood increasing. b is not
+    restricted to positive values (only psi_k > 0 is required), so single-track estimates of D can be
+    negative and averages over tracks are not biased by clipping. Starting values come from a grid of the
+    profile likelihood in rho = a/b.
+    """
+    lam, S, w = np.asarray(lam, float), np.asarray(S, float), np.asarray(w, float)
+    d = float(n_dims)
+    n = lam.shape[0]
+    W = w.sum(axis=1)
+    y = S / d
+    if s_known is not None:
+        s = np.broadcast_to(np.asarray(s_known, float), (n,))
+        u = 1.0 - R * lam
+        off = s[:, None] * lam
+        b = np.maximum(np.sum(w * (y - off), axis=1) / np.maximum(np.sum(w * u, axis=1), 1e-300), 1e-300)
+        b = np.where(np.isfinite(b), b, 1.0)
+        conv = np.zeros(n, bool)
+        for _ in range(max_iter):
+            psi = b[:, None] * u + off
+            r = w / psi**2
+            den = np.sum(r * u * u, axis=1)
+            b_new = np.sum(r * u * (y - off), axis=1) / den
+            b_new = _halve(b, b_new, lambda bb: _loglik(bb, s - R * bb, lam, S, w, d))
+            conv = np.abs(b_new - b) <= 1e-10 * np.abs(b) + 1e-300
+            b = b_new
+            if conv.all():
+                break
+        psi = b[:, None] * u + off
+        var_b = 2.0 / (d * np.sum(w * u * u / psi**2, axis=1))
+        return b, s - R * b, var_b, conv
+
+    # starting values: profile likelihood over rho = a / b on a grid (b > 0 there)
+    best = np.full(n, -np.inf)
+    b = np.ones(n)
+    a = np.zeros(n)
+    for rho in _RHO_GRID:
+        q = 1.0 + rho * lam
+        bh = np.sum(w * S / q, axis=1) / (d * W)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ll = -0.5 * d * (W * np.log(bh) + np.sum(w * np.log(q), axis=1))
+        better = ll > best
+        best = np.where(better, ll, best)
+        b = np.where(better, bh, b)
+        a = np.where(better, rho * bh, a)
+    conv = np.zeros(n, bool)
+    active = np.ones(n, bool)
+    for _ in range(max_iter):
+        i = np.flatnonzero(active)
+        if i.size == 0:
+            break
+        L, Y, Wt = lam[i], y[i], w[i]
+        psi = b[i, None] + a[i, None] * L
+        r = Wt / psi**2
+        s0, s1, s2 = r.sum(1), (r * L).sum(1), (r * L * L).sum(1)
+        t0, t1 = (r * Y).sum(1), (r * L * Y).sum(1)
+        det = s0 * s2 - s1 * s1
+        with np.errstate(divide="ignore", invalid="ignore"):
+            bn = (s2 * t0 - s1 * t1) / det
+            an = (s0 * t1 - s1 * t0) / det
+        bad = ~np.isfinite(bn) | ~np.isfinite(an)
+        bn, an = np.where(bad, b[i], bn), np.where(bad, a[i], an)
+        theta = np.stack([b[i], a[i]], 1)
+        new = _halve(theta, np.stack([bn, an], 1),
+                     lambda th, i=i: _loglik(th[:, 0], th[:, 1], lam[i], S[i], w[i], d))
+        done = (np.abs(new[:, 0] - b[i]) <= 1e-9 * np.abs(b[i]) + 1e-12 * np.abs(a[i]) + 1e-300) & (
+            np.abs(new[:, 1] - a[i]) <= 1e-9 * (np.abs(a[i]) + np.abs(b[i])) + 1e-300)
+        b[i], a[i] = new[:, 0], new[:, 1]
+        conv[i[done]] = True
+        active[i[done]] = False
+    psi = b[:, None] + a[:, None] * lam
+    r = w / psi**2
+    s0, s1, s2 = r.sum(1), (r * lam).sum(1), (r * lam * lam).sum(1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var_b = (2.0 / d) * s2 / (s0 * s2 - s1 * s1)
+    return b, a, var_b, conv
+
+
+def _halve(old, new, loglik, n_halvings: int = 40):
+    """Step halving: move from old toward new until the log-likelihood does not decrease."""
+    ll0 = loglik(old)
+    cand = new.copy()
+    ll = loglik(cand)
+    for _ in range(n_halvings):
+        worse = ~(ll >= ll0 - 1e-12 * np.abs(ll0))
+        if not worse.any():
+            break
+        cand[worse] = 0.5 * (cand[worse] + old[worse])
+        ll[worse] = loglik(cand)[worse]
+    worse = ~(ll >= ll0 - 1e-12 * np.abs(ll0))
+    cand[worse] = old[worse]
+    return cand
+
+
+def ml_variance_b(b, s, lam, w, *, n_dims: int, R: float):
+    """Inverse Fisher information for b at (b, a = s - R b), a profiled out (NaN where some psi <= 0)."""
+    a = s - R * b
+    psi = b[:, None] + a[:, None] * lam
+    valid = np.all((psi > 0) | (w == 0), axis=1)
+    psi = np.where(w > 0, psi, 1.0)
+    r = w / psi**2
+    s0, s1, s2 = r.sum(1), (r * lam).sum(1), (r * lam * lam).sum(1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v = (2.0 / n_dims) * s2 / (s0 * s2 - s1 * s1)
+    return np.where(valid, v, np.nan)
+
+
+def ml_interval(b_hat, s_hat, lam, w, *, n_dims: int, R: float, z: float = Z95, n_iter: int = 14):
+    """Score-type interval {b : (b_hat - b)^2 <= z^2 Var(b)} with Var from the Fisher information.
+
+    Var(b) is evaluated at (b, a = s_hat - R b): the expected information at the hypothesised value, as in
+    the covariance and MSD-fit intervals. Endpoints are found by bracketing and the Illinois (regula falsi)
+    method. Where psi_k(b) would turn negative before the inequality is violated, the end of the admissible
+    range is the endpoint; hi is +inf if the information is too small to bound b.
+    """
+    b_hat = np.asarray(b_hat, float)
+    s_hat = np.asarray(s_hat, float)
+    v0 = ml_variance_b(b_hat, s_hat, lam, w, n_dims=n_dims, R=R)
+    se = np.sqrt(np.where(np.isfinite(v0) & (v0 > 0), v0, np.abs(b_hat) + 1e-300))
+    z2 = z * z
+
+    def f(bb):
+        v = ml_variance_b(bb, s_hat, lam, w, n_dims=n_dims, R=R)
+        return np.where(np.isfinite(v), (b_hat - bb) ** 2 - z2 * v, 1.0)  # outside the admissible range: > 0
+
+    out = []
+    for sign in (-1.0, 1.0):
+        inner = b_hat.copy()
+        outer = np.full_like(b_hat, np.nan)
+        f_in = f(inner)
+        f_out = np.full_like(b_hat, np.nan)
+        for k in range(8):
+            trial = b_hat + sign * se * 2.0**k
+            ft = f(trial)
+            newly = np.isnan(outer) & (ft > 0)
+            outer[newly], f_out[newly] = trial[newly], ft[newly]
+            still = np.isnan(outer)
+            inner[still], f_in[still] = trial[still], ft[still]
+            if not still.any():
+                break
+        unbounded = np.isnan(outer)
+        outer = np.where(unbounded, inner, outer)
+        f_out = np.where(unbounded, 1.0, f_out)
+        lo_x, hi_x, f_lo, f_hi = inner, outer, f_in, f_out
+        side = np.zeros(b_hat.shape, int)
+        for _ in range(n_iter):
+            with np.errstate(invalid="ignore", divide="ignore"):
+                x = hi_x - f_hi * (hi_x - lo_x) / (f_hi - f_lo)
+            x = np.where(np.isfinite(x) & ((x - lo_x) * (x - hi_x) <= 0), x, 0.5 * (lo_x + hi_x))
+            fx = f(x)
+            pos = fx > 0
+            # Illinois: halve the retained end's value when the same end is kept twice
+            hi_x, lo_x = np.where(pos, x, hi_x), np.where(pos, lo_x, x)
+            f_lo_new = np.where(pos, np.where(side == 1, f_lo / 2, f_lo), fx)
+            f_hi_new = np.where(pos, fx, np.where(side == -1, f_hi / 2, f_hi))
+            side = np.where(pos, 1, -1)
+            f_lo, f_hi = f_lo_new, f_hi_new
+        end = np.where(unbounded, sign * np.inf, 0.5 * (lo_x + hi_x))
+        out.append(end)
+    return out[0], out[1]
+
+
+def cramer_rao_var_b(n_steps: int, b: float, a: float, *, n_dims: int = 2, R: float = 0.0,
+                     s_known: bool = False) -> float:
+    """Cramér-Rao bound on Var(b_hat) for one track of n_steps steps without gaps.
+
+    Exact for the Gaussian model: Fisher information of the independent DST modes,
+    I = d/2 sum_k grad psi_k grad psi_k^T / psi_k^2 with psi_k = b + a lambda_k (Berglund 2010; Vestergaard et
+    al. 2014). With ``s_known`` the localisation variance is known and a = s - R b moves with b.
+    """
+    k = np.arange(1, n_steps + 1)
+    lam = 2.0 * (1.0 - np.cos(np.pi * k / (n_steps + 1)))
+    psi = b + a * lam
+    if s_known:
+        u = 1.0 - R * lam
+        return float(2.0 / (n_dims * np.sum(u * u / psi**2)))
+    s0, s1, s2 = np.sum(1 / psi**2), np.sum(lam / psi**2), np.sum(lam**2 / psi**2)
+    return float((2.0 / n_dims) * s2 / (s0 * s2 - s1 * s1))
+
+
+# ----------------------------------------------------------------------------------------------------------
+# MSD fit with the optimal number of lags
+# ----------------------------------------------------------------------------------------------------------
+
+@lru_cache(maxsize=4096)
+def msd_covariance_terms(n_steps: int, n_lags: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Covariance of one axis' time-averaged MSD at lags 1..n_lags as Q_bb b^2 + 2 Q_ab a b + Q_aa a^2.
+
+    Notes
+    -----
+    For positions with stationary increments and structure function V(t) = E (X_(i+t) - X_i)^2 =
+    b |t| + 2a [t != 0], displacements n and m frames long starting delta frames apart have covariance
+    C = [V(n - delta) + V(delta + m) - V(n - m - delta) - V(delta)] / 2, and for Gaussian data
+    Cov(M_n, M_m) = 2 / (K_n K_m) sum_delta count(delta) C(delta)^2 with K_n = N - n + 1 windows
+    (the construction behind Qian, Sheetz & Elson 1991 and Michalet 2010, here with the blur-aware V).
+    """
+    P = min(n_lags, n_steps)
+    n = np.arange(1, P + 1)
+    K = n_steps - n + 1
+    delta = np.arange(-P, P + 1)
+    nn, mm, dd = n[:, None, None], n[None, :, None], delta[None, None, :]
+
+    def parts(t):
+        t = np.abs(t)
+        return t, (t != 0).astype(float) * 2.0
+
+    vb = [parts(x) for x in (nn - dd, dd + mm, nn - mm - dd, dd)]
+    Cb = 0.5 * (vb[0][0] + vb[1][0] - vb[2][0] - vb[3][0])
+    Ca = 0.5 * (vb[0][1] + vb[1][1] - vb[2][1] - vb[3][1])
+    Kn, Km = K[:, None, None], K[None, :, None]
+    count = np.maximum(0, np.minimum(Kn, Km - dd) - np.maximum(0, -dd)).astype(float)
+    scale = 2.0 / (K[:, None] * K[None, :])
+    Qbb = scale * np.sum(count * Cb * Cb, axis=2)
+    Qab = scale * np.sum(count * Cb * Ca, axis=2)
+    Qaa = scale * np.sum(count * Ca * Ca, axis=2)
+    return Qbb, Qab, Qaa
+
+
+@lru_cache(maxsize=4096)
+def slope_variance_terms(n_steps: int, p_max: int) -> np.ndarray:
+    """(p_max + 1, 3) coefficients (k_bb, k_ab, k_aa) of Var(slope) of an unweighted fit on lags 1..p, per axis.
+
+    Rows p < 2 are NaN. Var(b_hat) = k_bb b^2 + 2 k_ab a b + k_aa a^2.
+    """
+    Qbb, Qab, Qaa = msd_covariance_terms(n_steps, p_max)
+    P = Qbb.shape[0]
+    out = np.full((p_max + 1, 3), np.nan)
+    for p in range(2, P + 1):
+        n = np.arange(1, p + 1, dtype=float)
+        w = (n - n.mean()) / np.sum((n - n.mean()) ** 2)
+        out[p] = [w @ Q[:p, :p] @ w for Q in (Qbb, Qab, Qaa)]
+    return out
+
+
+def optimal_lag_fit(y, n_steps, *, p_max: int, n_iter: int = 10):
+    """Unweighted MSD fit on lags 1..p with p chosen to minimise the predicted variance of the slope.
+
+    Parameters
+    ----------
+    y : (n_tracks, p_max) array
+        Per-axis time-averaged MSD (summed MSD divided by d) at lags 1..p_max, NaN where missing.
+    n_steps : (n_tracks,) int array
+        Steps per track (sets the number of windows; gaps are treated as if absent).
+
+    Returns
+    -------
+    b, a, p, k : slope b, intercept/2 = a, number of lags used, and the (n_tracks, 3) variance coefficients
+        at that p.
+
+    Notes
+    -----
+    MSD_n = b n + 2a; the fit on n = 1..p is iterated on the estimated reduced error as in Michalet (2010):
+    start at p = 2, estimate (b, a), pick p minimising Var(b_hat) predicted from the exact MSD covariance
+    (:func:`msd_covariance_terms`), refit, until p stops changing.
+    """
+    T = y.shape[0]
+    # cumulative OLS sums over lags 1..p for every p
+    lag = np.arange(1, p_max + 1, dtype=float)
+    have = np.isfinite(y)
+    yz = np.where(have, y, 0.0)
+    c1 = np.cumsum(have, 1)
+    cn = np.cumsum(have * lag, 1)
+    cnn = np.cumsum(have * lag * lag, 1)
+    cy = np.cumsum(yz, 1)
+    cny = np.cumsum(yz * lag, 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        den = c1 * cnn - cn * cn
+        slope = (c1 * cny - cn * cy) / den
+        icpt = (cy - slope * cn) / c1
+    terms = np.full((T, p_max + 1, 3), np.nan)
+    ns = np.asarray(n_steps, int)
+    for N in np.unique(ns):
+        sel = ns == N
+        terms[sel] = slope_variance_terms(int(N), p_max)[None]
+    p_lim = np.minimum(p_max, np.maximum(ns, 2))
+    p = np.minimum(2, p_lim)
+    rows = np.arange(T)
+    for _ in range(n_iter):
+        b = slope[rows, p - 1]
+        a = icpt[rows, p - 1] / 2.0
+        bb = np.where(b > 0, b, np.maximum(np.abs(a), 1e-300) * 1e-6)
+        var = (terms[:, :, 0] * bb[:, None] ** 2 + 2 * terms[:, :, 1] * (a * bb)[:, None]
+               + terms[:, :, 2] * (a * a)[:, None])
+        ok = np.isfinite(var)
+        ok[:, 1:] &= np.isfinite(slope)
+        ok[:, :2] = False
+        ok &= np.arange(p_max + 1)[None, :] <= p_lim[:, None]
+        var = np.where(ok, var, np.inf)
+        p_new = np.where(np.isfinite(var).any(1), np.argmin(var, axis=1), p)
+        if np.array_equal(p_new, p):
+            break
+        p = p_new
+    b = slope[rows, p - 1]
+    a = icpt[rows, p - 1] / 2.0
+    return b, a, p, terms[rows, p]

@@ -1,0 +1,115 @@
+"""Steps between consecutive frames of every track, as the estimators of D use them.
+
+A gap (missed frame) splits a track into segments of consecutive frames. Estimators use only steps inside a
+segment: a two-frame displacement is never taken for a one-frame step. For Brownian motion observed with
+localisation error and motion blur the steps of different segments are independent (their Brownian parts
+cover disjoint time intervals and every position carries its own noise), so a track's likelihood is the
+product of its segments' likelihoods.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import scipy.fft
+
+from ..msd import _Tracks
+
+
+@dataclass(frozen=True)
+class Steps:
+    """Per-track step statistics (arrays of length n_tracks) and the flat steps themselves.
+
+    Attributes
+    ----------
+    ids : track ids; n_points : positions per track; n_steps : steps between consecutive frames;
+    n_pairs : pairs of adjacent steps (both inside one segment); sum_sq : sum over steps and axes of the
+    squared step, µm²; sum_cross : sum over adjacent step pairs and axes of the product, µm².
+    steps : (n_steps_total, n_dims) steps, µm; step_track : track index of each step; seg_start,
+    seg_len, seg_track : segments as runs of steps.
+    """
+
+    ids: np.ndarray
+    n_points: np.ndarray
+    n_steps: np.ndarray
+    n_pairs: np.ndarray
+    sum_sq: np.ndarray
+    sum_cross: np.ndarray
+    steps: np.ndarray
+    step_track: np.ndarray
+    seg_start: np.ndarray
+    seg_len: np.ndarray
+    seg_track: np.ndarray
+    n_dims: int
+
+
+def collect_steps(tracks: pd.DataFrame, n_dims: int) -> Steps:
+    """Steps between consecutive frames, grouped by track and segment (see module notes)."""
+    tr = _Tracks(tracks, n_dims)
+    n_rows = tr.frame.size
+    row_track = np.repeat(np.arange(tr.ids.size), tr.count)
+    if n_rows > 1:
+        consecutive = (row_track[1:] == row_track[:-1]) & (np.diff(tr.frame) == 1)
+    else:
+        consecutive = np.zeros(0, bool)
+    where = np.flatnonzero(consecutive)
+    steps = np.empty((where.size, n_dims))
+    for d, c in enumerate(tr.coords):
+        steps[:, d] = c[where + 1] - c[where]
+    step_track = row_track[where]
+    n_tr = tr.ids.size
+    n_steps = np.bincount(step_track, minlength=n_tr)
+    sum_sq = np.bincount(step_track, weights=np.einsum("ij,ij->i", steps, steps), minlength=n_tr)
+    # adjacent steps k, k+1 share the middle position: rows where[k] + 1 == where[k+1]
+    adjacent = np.flatnonzero(where[1:] == where[:-1] + 1)
+    pair_track = step_track[adjacent]
+    n_pairs = np.bincount(pair_track, minlength=n_tr)
+    sum_cross = np.bincount(
+        pair_track, weights=np.einsum("ij,ij->i", steps[adjacent], steps[adjacent + 1]), minlength=n_tr
+    )
+    new_seg = np.ones(where.size, bool)
+    new_seg[1:] = where[1:] != where[:-1] + 1
+    seg_start = np.flatnonzero(new_seg)
+    seg_len = np.diff(np.append(seg_start, where.size))
+    return Steps(
+        ids=tr.ids, n_points=tr.count, n_steps=n_steps.astype(np.int64), n_pairs=n_pairs.astype(np.int64),
+        sum_sq=sum_sq, sum_cross=sum_cross, steps=steps, step_track=step_track, seg_start=seg_start,
+        seg_len=seg_len, seg_track=step_track[seg_start] if where.size else np.zeros(0, np.int64),
+        n_dims=n_dims,
+    )
+
+
+def sine_modes(st: Steps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Discrete-sine-transform modes of every segment's steps.
+
+    Returns
+    -------
+    lam : (n_steps_total,) eigenvalue factors lambda_k = 2 (1 - cos(pi k / (m + 1))), k = 1..m for a
+        segment of m steps.
+    power : (n_steps_total,) sum over axes of the squared orthonormal DST-I coefficient.
+    mode_track : (n_steps_total,) track index of each mode, sorted by track.
+
+    Notes
+    -----
+    The steps of one segment have the tridiagonal covariance b I + a T (T = tridiag(-1, 2, -1)) per axis, which
+    the orthonormal DST-I diagonalises with eigenvalues psi_k = b + a lambda_k (Berglund 2010, Phys. Rev. E
+    82:011917; Vestergaard, Blainey & Flyvbjerg 2014, Phys. Rev. E 89:022726).
+    """
+    total = st.steps.shape[0]
+    lam = np.empty(total)
+    power = np.empty(total)
+    if total == 0:
+        return lam, power, np.zeros(0, np.int64)
+    order = np.argsort(st.seg_len, kind="stable")
+    lens = st.seg_len[order]
+    bounds = np.flatnonzero(np.diff(lens)) + 1
+    for grp in np.split(order, bounds):
+        m = int(st.seg_len[grp[0]])
+        idx = st.seg_start[grp][:, None] + np.arange(m)[None, :]
+        block = st.steps[idx]  # (n_seg, m, n_dims)
+        coef = scipy.fft.dst(block, type=1, axis=1, norm="ortho")
+        power[idx] = np.einsum("smd,smd->sm", coef, coef)
+        lam[idx] = 2.0 * (1.0 - np.cos(np.pi * np.arange(1, m + 1) / (m + 1)))[None, :]
+    return lam, power, st.step_track

@@ -1,0 +1,579 @@
+"""Diffusion coefficient, localisation error and anomalous exponent per track and per sample.
+
+Estimators of D (all corrected for localisation error and motion blur, R = t_E / (6 dt)):
+
+``"covariance"``
+    Covariance-based estimator (Vestergaard, Blainey & Flyvbjerg 2014): unbiased, closed form, near the
+    Cramér-Rao bound when the reduced localisation error x = sigma^2 / (D dt) is small.
+``"likelihood"``
+    Maximum likelihood on the steps, whose covariance the discrete sine transform diagonalises (Berglund 2010;
+    Vestergaard et al. 2014): at the bound for any x.
+``"msd_fit"``
+    Unweighted fit of the time-averaged MSD on lags 1..p with p chosen from the estimated x (Michalet 2010).
+``"auto"``
+    ``"covariance"`` when the pooled estimate of x over all tracks given is at most :data:`AUTO_X_SWITCH`,
+    ``"likelihood"`` otherwise (see benchmarks/estimators.py). The choice is made once per call from pooled
+    data, so it does not select tracks by their own noisy estimates (which would bias averages).
+
+Gaps: only steps between consecutive frames are used; a track with missed frames is a set of independent
+segments (see :mod:`msdkit.estimators.increments`). Single-track estimates of D can be negative and are never
+clipped; sample estimates pool the steps of all tracks.
+
+References
+----------
+X. Michalet, Phys. Rev. E 82, 041914 (2010), doi:10.1103/PhysRevE.82.041914.
+A. J. Berglund, Phys. Rev. E 82, 011917 (2010), doi:10.1103/PhysRevE.82.011917.
+C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014),
+doi:10.1103/PhysRevE.89.022726.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .errors import FitError, expected_got
+from .estimators import anomalous as an
+from .estimators import diffusion as dif
+from .estimators.increments import Steps, collect_steps, sine_modes
+from .msd import time_averaged_msd
+
+__all__ = ["fit_tracks", "fit_sample", "SampleFit", "cramer_rao_relative_sd", "METHODS", "AUTO_X_SWITCH"]
+
+METHODS = ("auto", "covariance", "likelihood", "msd_fit")
+#: Pooled reduced error above which ``auto`` uses maximum likelihood instead of the covariance estimator.
+AUTO_X_SWITCH = 0.3
+#: Largest lag for the optimal-lag MSD fit.
+MSD_FIT_MAX_LAG = 40
+#: Largest lag and number of lags for fits of the anomalous exponent.
+ALPHA_MAX_LAG = 50
+ALPHA_N_LAGS = 10
+#: Elements (tracks x modes) per chunk of the vectorised likelihood fit.
+_CHUNK = 1 << 21
+
+TRACK_FIT_COLUMNS = (
+    "track", "n_points", "D_um2_s", "D_ci95_lo_um2_s", "D_ci95_hi_um2_s", "sigma_um", "sigma2_um2",
+    "x_reduced", "alpha", "alpha_ci95_lo", "alpha_ci95_hi", "K_um2_s_alpha", "method", "fit_status",
+)
+
+
+def _check_common(frame_interval_s, exposure_s, n_dims, method):
+    if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
+        raise ValueError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
+    if exposure_s is None:
+        exposure_s = frame_interval_s
+    if not (0 <= exposure_s <= frame_interval_s):
+        raise ValueError(expected_got("exposure_s", f"between 0 and frame_interval_s={frame_interval_s}",
+                                      exposure_s, "The shutter cannot stay open longer than a frame."))
+    if n_dims not in (1, 2, 3):
+        raise ValueError(expected_got("n_dims", "1, 2 or 3", n_dims, "Count the tracked coordinates."))
+    if method not in METHODS:
+        raise ValueError(expected_got("method", " or ".join(repr(m) for m in METHODS), repr(method),
+                                      "Pick one of the estimators listed."))
+    return float(frame_interval_s), float(exposure_s)
+
+
+def cramer_rao_relative_sd(n_points: int, x_reduced: float, *, blur_R: float = 0.0, n_dims: int = 2,
+                           sigma_known: bool = False) -> float:
+    """Cramér-Rao bound on SD(D_hat)/D for one track of n_points positions without gaps.
+
+    Parameters
+    ----------
+    n_points : int
+    x_reduced : float
+        sigma^2 / (D dt).
+    blur_R : float, default=0
+        t_E / (6 dt).
+    n_dims : int, default=2
+    sigma_known : bool, default=False
+        True: sigma is known, only D is estimated.
+
+    Notes
+    -----
+    Exact Fisher information of the Gaussian step model in its DST-diagonal form (Berglund 2010;
+    Vestergaard et al. 2014). For n_points = 100 in 2D: 10.1 % (sigma = 0 known), 18.0 % (x = 0.1), 21.4 %
+    (x = 1), 32.7 % (x = 10).
+    """
+    b = 2.0
+    a = x_reduced - blur_R * b
+    return float(np.sqrt(dif.cramer_rao_var_b(int(n_points) - 1, b, a, n_dims=n_dims, R=blur_R,
+                                              s_known=sigma_known)) / b)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# helpers
+# ----------------------------------------------------------------------------------------------------------
+
+def _resolve_method(method: str, st: Steps, R: float) -> tuple[str, float]:
+    """Pooled covariance estimate of x and the estimator ``auto`` picks from it."""
+    b, a = dif.covariance_estimate(st.sum_sq.sum(), st.n_steps.sum(), st.sum_cross.sum(), st.n_pairs.sum(),
+                                   n_dims=st.n_dims, R=R)
+    s = a + R * b
+    x = float(2.0 * s / b) if b > 0 else np.inf
+    if method != "auto":
+        return method, x
+    return ("covariance" if x <= AUTO_X_SWITCH else "likelihood"), x
+
+
+def _padded_groups(n_modes: np.ndarray, ratio: float = 1.25):
+    """Tracks grouped by number of modes (padding waste <= ratio), chunked to bound memory."""
+    order = np.argsort(n_modes, kind="stable")
+    nm = n_modes[order]
+    i = 0
+    while i < order.size:
+        hi_val = max(int(nm[i] * ratio), int(nm[i]))
+        j = int(np.searchsorted(nm, hi_val, side="right"))
+        K = int(nm[j - 1])
+        per = max(1, _CHUNK // max(K, 1))
+        for s in range(i, j, per):
+            yield order[s:min(j, s + per)], K
+        i = j
+
+
+def _fill_padded(idx, K, first, n_modes, *arrays):
+    """(len(idx), K) arrays of each flat per-mode array for tracks idx, plus a 0/1 weight array."""
+    cols = np.arange(K)
+    w = (cols[None, :] < n_modes[idx][:, None]).astype(float)
+    src = np.minimum(first[idx][:, None] + cols[None, :], first[idx][:, None] + np.maximum(n_modes[idx], 1)[:, None] - 1)
+    out = [np.where(w > 0, arr[src], (1.0 if k == 0 else 0.0)) for k, arr in enumerate(arrays)]
+    return w, out
+
+
+def _likelihood_tracks(st: Steps, usable: np.ndarray, *, n_dims: int, R: float):
+    """Per-track maximum likelihood (b, a) and score-type interval of b."""
+    lam, power, mode_track = sine_modes(st)
+    n_tr = st.ids.size
+    n_modes = st.n_steps
+    first = np.concatenate([[0], np.cumsum(n_modes)[:-1]])
+    b = np.full(n_tr, np.nan)
+    a = np.full(n_tr, np.nan)
+    lo = np.full(n_tr, np.nan)
+    hi = np.full(n_tr, np.nan)
+    conv = np.zeros(n_tr, bool)
+    idx_all = np.flatnonzero(usable)
+    for grp, K in _padded_groups(n_modes[idx_all]):
+        idx = idx_all[grp]
+        w, (L, S) = _fill_padded(idx, K, first, n_modes, lam, power)
+        bb, aa, _, cv = dif.ml_fit(L, S, w, n_dims=n_dims)
+        s_hat = aa + R * bb
+        l_, h_ = dif.ml_interval(bb, s_hat, L, w, n_dims=n_dims, R=R)
+        b[idx], a[idx], lo[idx], hi[idx], conv[idx] = bb, aa, l_, h_, cv
+    return b, a, lo, hi, conv
+
+
+def _msd_matrix(tracks, st: Steps, max_lag: int, n_dims: int):
+    """Per-axis TA-MSD (n_tracks, max_lag) and pair counts, NaN where a lag has no pair."""
+    ta = time_averaged_msd(tracks, max_lag_frames=max_lag, n_dims=n_dims)
+    row = np.searchsorted(st.ids, ta["track"].to_numpy())
+    col = ta["lag_frames"].to_numpy() - 1
+    y = np.full((st.ids.size, max_lag), np.nan)
+    npairs = np.zeros((st.ids.size, max_lag))
+    y[row, col] = ta["msd_um2"].to_numpy() / n_dims
+    npairs[row, col] = ta["n_pairs"].to_numpy()
+    return y, npairs
+
+
+def _alpha_lag_count(n_steps):
+    return np.clip(np.asarray(n_steps) // 3, 3, ALPHA_MAX_LAG)
+
+
+def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
+    """Ensemble fit of (K, alpha, s) with a bootstrap over tracks. Returns dict of results."""
+    cols = lags - 1
+    W = npairs[:, cols]
+    Y = np.where(W > 0, y[:, cols], 0.0)
+    keep = W.sum(1) > 0
+    W, Y = W[keep], Y[keep]
+    T = W.shape[0]
+    sw = W.sum(0)
+    if T == 0 or np.any(sw == 0):
+        return None
+    ens = (W * Y).sum(0) / sw
+    infl = W * (Y - ens) / sw  # influence of each track on the ensemble MSD
+    C = infl.T @ infl * (T / max(T - 1, 1))
+    d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+    corr = C / np.outer(d, d)
+    corr = 0.8 * corr + 0.2 * np.eye(corr.shape[0])  # shrink toward independence: C is estimated from tracks
+    Cinv = np.linalg.pinv(corr) / np.outer(d, d)
+    t = lags * dt
+    theta, cov, ok = an.gls_power_law(ens[None, :], t, Cinv, exposure_s=exposure_s, s=None)
+    out = {"theta": theta[0], "cov": cov[0], "ok": bool(ok[0]), "ens": ens, "n_tracks": T}
+    if T >= 2 and n_boot > 0:
+        g = np.random.default_rng(rng)
+        reps = []
+        for s0 in range(0, n_boot, 200):
+            nb = min(200, n_boot - s0)
+            cnt = np.stack([np.bincount(g.integers(0, T, T), minlength=T) for _ in range(nb)]).astype(float)
+            ens_b = (cnt @ (W * Y)) / np.maximum(cnt @ W, 1e-300)
+            th_b, _, _ = an.gls_power_law(ens_b, t, Cinv, exposure_s=exposure_s, s=None,
+                                           theta0=np.repeat(theta, nb, axis=0))
+            reps.append(th_b)
+        out["boot"] = np.concatenate(reps)
+    return out
+
+
+def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
+    """Per-track fit of (K, alpha) with the localisation variance fixed at s_shared."""
+    n_tr = st.ids.size
+    alpha = np.full(n_tr, np.nan)
+    se = np.full(n_tr, np.nan)
+    K = np.full(n_tr, np.nan)
+    n_a = _alpha_lag_count(st.n_steps)
+    usable = (st.n_steps >= 4) & np.isfinite(s_shared)
+    for na in np.unique(n_a[usable]):
+        lags = an.log_lags(int(na), ALPHA_N_LAGS)
+        idx = np.flatnonzero(usable & (n_a == na))
+        Y = y[idx][:, lags - 1]
+        good = np.all(np.isfinite(Y), axis=1)
+        idx, Y = idx[good], Y[good]
+        if idx.size == 0:
+            continue
+        # Brownian covariance with the average slope over the fitted lags (weights only)
+        b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
+        a_t = s_shared - R * b_t
+        C = np.empty((idx.size, lags.size, lags.size))
+        ns = np.maximum(st.n_steps[idx], int(lags[-1]))
+        for N in np.unique(ns):
+            sel = ns == N
+            C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], a_t[sel], n_dims)
+        C += np.eye(lags.size)[None] * 1e-12 * np.abs(C).max(axis=(1, 2))[:, None, None]
+        Cinv = np.linalg.inv(C)
+        theta, cov, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s,
+                                          s=np.full(idx.size, s_shared))
+        alpha[idx] = np.where(ok, theta[:, 1], np.nan)
+        se[idx] = np.where(ok, np.sqrt(np.maximum(cov[:, 1, 1], 0.0)), np.nan)
+        K[idx] = np.where(ok, np.exp(theta[:, 0]), np.nan)
+    return alpha, se, K
+
+
+# ----------------------------------------------------------------------------------------------------------
+# public API
+# ----------------------------------------------------------------------------------------------------------
+
+def fit_tracks(
+    tracks: pd.DataFrame,
+    *,
+    frame_interval_s: float,
+    exposure_s: float | None,
+    n_dims: int = 2,
+    method: str = "auto",
+    sigma_um: float | None = None,
+) -> pd.DataFrame:
+    """Fit D, the localisation error and the anomalous exponent of every track.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Columns ``track, frame, x_um, y_um`` (``z_um`` in 3D); frames may have gaps.
+    frame_interval_s : float, s
+    exposure_s : float, s
+        Shutter-open time per frame (0 = instantaneous; None = the frame interval).
+    n_dims : int, default=2
+    method : {"auto", "covariance", "likelihood", "msd_fit"}, default="auto"
+        Estimator of D (see the module notes).
+    sigma_um : float, optional, µm
+        The sample's shared localisation error, used to stabilise each track's anomalous exponent. By
+        default it is estimated from the ensemble MSD of the tracks given (power-law fit with offset). It does
+        not enter the per-track D, which carries its own localisation error.
+
+    Returns
+    -------
+    DataFrame, one row per track
+        ``track, n_points, D_um2_s, D_ci95_lo_um2_s, D_ci95_hi_um2_s, sigma_um, sigma2_um2, x_reduced, alpha,
+        alpha_ci95_lo, alpha_ci95_hi, K_um2_s_alpha, method, fit_status``. ``sigma2_um2`` is the (possibly
+        negative) estimate of sigma^2, ``sigma_um`` its square root clipped at 0; ``x_reduced`` =
+        sigma^2/(D dt). ``fit_status`` is ``ok`` or the reason D could not be estimated
+        (``too_short``: fewer than two consecutive steps; ``not_converged``).
+
+    Notes
+    -----
+    D intervals are score-type 95 % intervals from each estimator's known variance at the hypothesised D
+    (closed form for the covariance estimator, the exact MSD covariance for the MSD fit, the Fisher
+    information for maximum likelihood); the upper end is +inf when a track is too short and noisy to bound
+    D. The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
+    the model 2d [K g_alpha(t) + sigma^2] including blur (:func:`msdkit.estimators.anomalous.blurred_power_law`)
+    by generalised least squares, with sigma fixed at the shared value.
+
+    Examples
+    --------
+    >>> from msdkit.simulate import brownian_positions, positions_to_tracks
+    >>> pos = brownian_positions(20, 100, D_um2_s=1.0, frame_interval_s=0.01, exposure_s=0.01,
+    ...                          localization_sd_um=0.03, rng=2)
+    >>> fits = fit_tracks(positions_to_tracks(pos, frame_interval_s=0.01), frame_interval_s=0.01,
+    ...                   exposure_s=0.01)
+    >>> bool(abs(fits["D_um2_s"].mean() - 1.0) < 0.2)
+    True
+    """
+    dt, t_e = _check_common(frame_interval_s, exposure_s, n_dims, method)
+    if sigma_um is not None and not (np.isfinite(sigma_um) and sigma_um >= 0):
+        raise ValueError(expected_got("sigma_um", "a finite number >= 0 or None", sigma_um,
+                                      "Give the localisation error in µm, or leave it out."))
+    R = dif.blur_coefficient(dt, t_e)
+    st = collect_steps(tracks, n_dims)
+    n_tr = st.ids.size
+    chosen, _ = _resolve_method(method, st, R)
+    usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
+    status = np.where(usable, "ok", "too_short").astype(object)
+
+    if chosen == "covariance":
+        b, a = dif.covariance_estimate(st.sum_sq, st.n_steps, st.sum_cross, st.n_pairs, n_dims=n_dims, R=R)
+        k = dif.covariance_variance_coefficients(np.maximum(st.n_steps, 1), n_dims=n_dims)
+        s = a + R * b
+        lo, hi = dif.quadratic_interval(b, np.maximum(s, 0.0), *k, R=R)
+    elif chosen == "likelihood":
+        b, a, lo, hi, conv = _likelihood_tracks(st, usable, n_dims=n_dims, R=R)
+        status[usable & ~conv] = "not_converged"
+    else:  # msd_fit
+        p_max = int(min(MSD_FIT_MAX_LAG, max(2, st.n_steps.max(initial=2))))
+        y, _ = _msd_matrix(tracks, st, p_max, n_dims)
+        b, a, p, k = dif.optimal_lag_fit(y, np.maximum(st.n_steps, 2), p_max=p_max)
+        s = a + R * b
+        lo, hi = dif.quadratic_interval(b, np.maximum(s, 0.0), k[:, 0] / n_dims, k[:, 1] / n_dims,
+                                        k[:, 2] / n_dims, R=R)
+        usable &= np.isfinite(b)
+        status[~usable] = "too_short"
+
+    s = a + R * b
+    to_D = 1.0 / (2.0 * dt)
+    D = np.where(usable, b * to_D, np.nan)
+
+    # anomalous exponent with a shared localisation variance
+    y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
+    if sigma_um is None:
+        n_max = int(np.clip(np.median(st.n_steps[usable]) // 3 if usable.any() else 3, 3, ALPHA_MAX_LAG))
+        res = _sample_power_law(y_a, np_a, dt=dt, exposure_s=t_e, n_dims=n_dims, rng=0, n_boot=0,
+                                lags=an.log_lags(n_max, ALPHA_N_LAGS))
+        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
+    else:
+        s_shared = float(sigma_um) ** 2
+    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
+    a_lo, a_hi = an.alpha_interval(alpha, a_se)
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x_red = np.where(usable, 2.0 * s / b, np.nan)
+    return pd.DataFrame({
+        "track": st.ids,
+        "n_points": st.n_points,
+        "D_um2_s": D,
+        "D_ci95_lo_um2_s": np.where(usable, lo * to_D, np.nan),
+        "D_ci95_hi_um2_s": np.where(usable, hi * to_D, np.nan),
+        "sigma_um": np.where(usable, np.sqrt(np.maximum(s, 0.0)), np.nan),
+        "sigma2_um2": np.where(usable, s, np.nan),
+        "x_reduced": x_red,
+        "alpha": alpha,
+        "alpha_ci95_lo": a_lo,
+        "alpha_ci95_hi": a_hi,
+        "K_um2_s_alpha": K,
+        "method": np.full(n_tr, chosen, dtype=object),
+        "fit_status": status,
+    })
+
+
+@dataclass(frozen=True)
+class SampleFit:
+    """Sample-level estimates (pooled over tracks) with 95 % intervals from a bootstrap over tracks.
+
+    Attributes
+    ----------
+    D_um2_s, D_ci95_um2_s, D_se_um2_s : pooled D, its interval (lo, hi) and bootstrap SD.
+    sigma_um, sigma2_um2 : localisation error from the D estimator (sigma2 may be negative).
+    x_reduced : sigma^2 / (D dt).
+    alpha, alpha_ci95, alpha_se, K_um2_s_alpha, alpha_sigma_um : anomalous exponent from the ensemble MSD with
+        the localisation and blur offset, its interval, SD, prefactor and the localisation error fitted with it.
+    alpha_lags_frames : lags used for alpha.
+    method : estimator of D used; n_tracks, n_steps : tracks and consecutive-frame steps used.
+    n_boot : bootstrap replicates; fit_status : ``ok`` or the reason.
+    """
+
+    D_um2_s: float
+    D_ci95_um2_s: tuple[float, float]
+    alpha: float
+    alpha_ci95: tuple[float, float]
+    sigma_um: float
+    x_reduced: float
+    method: str
+    n_tracks: int
+    n_steps: int
+    D_se_um2_s: float = np.nan
+    sigma2_um2: float = np.nan
+    alpha_se: float = np.nan
+    K_um2_s_alpha: float = np.nan
+    alpha_sigma_um: float = np.nan
+    alpha_lags_frames: tuple[int, ...] = ()
+    n_boot: int = 0
+    fit_status: str = "ok"
+
+
+def _boot_counts(g, T, nb):
+    return np.stack([np.bincount(g.integers(0, T, T), minlength=T) for _ in range(nb)]).astype(float)
+
+
+def fit_sample(
+    tracks: pd.DataFrame,
+    track_fits: pd.DataFrame | None = None,
+    *,
+    frame_interval_s: float,
+    exposure_s: float | None,
+    n_dims: int = 2,
+    method: str = "auto",
+    rng=0,
+    n_boot: int = 1000,
+) -> SampleFit:
+    """Pooled D and anomalous exponent of a sample, with 95 % intervals by a bootstrap over tracks.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Track table (see :func:`fit_tracks`).
+    track_fits : DataFrame, optional
+        Output of :func:`fit_tracks`; when given, only its tracks with ``fit_status == "ok"`` are used and its
+        estimator is kept when ``method="auto"``.
+    frame_interval_s, exposure_s, n_dims, method
+        As in :func:`fit_tracks`.
+    rng : int, Generator or None, default=0
+        Seed of the bootstrap (fixed by default, so results are reproducible).
+    n_boot : int, default=1000
+
+    Returns
+    -------
+    SampleFit
+
+    Notes
+    -----
+    D pools the steps of all tracks with one shared (D, sigma): summed squares and cross-products for the
+    covariance estimator, one joint likelihood for maximum likelihood, the pair-weighted ensemble MSD for the
+    MSD fit. Tracks are resampled with replacement for the interval (percentile bootstrap), so heterogeneity
+    between tracks widens it; for maximum likelihood each replicate takes one Fisher-scoring step from the
+    pooled estimate with the resampled tracks' scores and information (one-step bootstrap).
+    alpha comes from a generalised least-squares fit of 2d [K g_alpha(t) + sigma^2] (blur included) to the
+    ensemble MSD at log-spaced lags, weighted by the between-track covariance of the ensemble MSD, with the
+    same bootstrap; localisation noise therefore does not pull alpha below 1.
+    """
+    dt, t_e = _check_common(frame_interval_s, exposure_s, n_dims, method)
+    if track_fits is not None:
+        ok_ids = track_fits.loc[track_fits["fit_status"] == "ok", "track"].to_numpy()
+        tracks = tracks[tracks["track"].isin(ok_ids)]
+        if method == "auto" and len(track_fits) and "method" in track_fits.columns:
+            m = track_fits.loc[track_fits["fit_status"] == "ok", "method"]
+            if len(m):
+                method = str(m.iloc[0])
+    R = dif.blur_coefficient(dt, t_e)
+    st = collect_steps(tracks, n_dims)
+    usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
+    if not usable.any():
+        raise FitError(expected_got("tracks", "at least one track with two steps between consecutive frames",
+                                    f"{st.ids.size} tracks without such steps",
+                                    "Check linking (gaps) or lower the minimum track length."))
+    chosen, _ = _resolve_method(method, st, R)
+    g = np.random.default_rng(rng)
+    idx = np.flatnonzero(usable)
+    T = idx.size
+    d = n_dims
+    n_steps_total = int(st.n_steps[idx].sum())
+
+    if chosen == "covariance":
+        per = np.stack([st.sum_sq[idx], st.n_steps[idx], st.sum_cross[idx], st.n_pairs[idx]], 1).astype(float)
+        tot = per.sum(0)
+        b, a = dif.covariance_estimate(*tot, n_dims=d, R=R)
+        b, a = float(b), float(a)
+
+        def boot_b(cnt):
+            sums = cnt @ per
+            return dif.covariance_estimate(*sums.T, n_dims=d, R=R)[0]
+    elif chosen == "likelihood":
+        lam, power, mode_track = sine_modes(st)
+        keep = usable[mode_track]
+        lam, power, mode_track = lam[keep], power[keep], np.searchsorted(idx, mode_track[keep])
+        bb, aa, _, _ = dif.ml_fit(lam[None], power[None], np.ones((1, lam.size)), n_dims=d)
+        b, a = float(bb[0]), float(aa[0])
+        psi = b + a * lam
+        res = power / d - psi
+        r = 1.0 / psi**2
+        # per-track score and expected information in (b, a), up to the common factor d/2
+        U = np.stack([np.bincount(mode_track, r * res, T), np.bincount(mode_track, r * res * lam, T)], 1)
+        Iq = np.stack([np.bincount(mode_track, r, T), np.bincount(mode_track, r * lam, T),
+                       np.bincount(mode_track, r * lam * lam, T)], 1)
+
+        def boot_b(cnt):
+            u = cnt @ U
+            q = cnt @ Iq
+            det = q[:, 0] * q[:, 2] - q[:, 1] ** 2
+            return b + (q[:, 2] * u[:, 0] - q[:, 1] * u[:, 1]) / det
+    else:
+        p_max = int(min(MSD_FIT_MAX_LAG, max(2, np.median(st.n_steps[idx]))))
+        y, npairs = _msd_matrix(tracks, st, p_max, d)
+        y, npairs = y[idx], npairs[idx]
+        wy = np.where(npairs > 0, npairs * y, 0.0)
+        # pooled (b, a) from the covariance estimator sets p; the fit itself uses the ensemble MSD
+        b0, a0 = dif.covariance_estimate(st.sum_sq[idx].sum(), st.n_steps[idx].sum(), st.sum_cross[idx].sum(),
+                                         st.n_pairs[idx].sum(), n_dims=d, R=R)
+        terms = dif.slope_variance_terms(int(np.median(st.n_steps[idx])), p_max)
+        bpos = max(float(b0), 1e-300)
+        var = terms[:, 0] * bpos**2 + 2 * terms[:, 1] * a0 * bpos + terms[:, 2] * a0**2
+        p = int(np.nanargmin(np.where(np.isfinite(var), var, np.inf))) if np.isfinite(var).any() else 2
+        lagv = np.arange(1, p + 1, dtype=float)
+        wslope = (lagv - lagv.mean()) / np.sum((lagv - lagv.mean()) ** 2)
+
+        def fit_lin(WY, NP):
+            ens = WY[:, :p] / np.maximum(NP[:, :p], 1e-300)
+            bs = ens @ wslope
+            return bs, (ens.mean(1) - bs * lagv.mean()) / 2.0
+
+        bb, aa = fit_lin(wy.sum(0)[None], npairs.sum(0)[None])
+        b, a = float(bb[0]), float(aa[0])
+
+        def boot_b(cnt):
+            return fit_lin(cnt @ wy, cnt @ npairs)[0]
+
+    boots = []
+    if T >= 2 and n_boot > 0:
+        for s0 in range(0, n_boot, 200):
+            boots.append(boot_b(_boot_counts(g, T, min(200, n_boot - s0))))
+        bs = np.concatenate(boots)
+        lo, hi = np.nanpercentile(bs, [2.5, 97.5])
+        se = float(np.nanstd(bs, ddof=1))
+    else:
+        lo = hi = se = np.nan
+    s = a + R * b
+    to_D = 1.0 / (2.0 * dt)
+
+    # anomalous exponent from the ensemble MSD
+    n_max = int(np.clip(np.median(st.n_steps[idx]) // 3, 3, ALPHA_MAX_LAG))
+    lags = an.log_lags(n_max, ALPHA_N_LAGS)
+    y_a, np_a = _msd_matrix(tracks, st, int(lags[-1]), d)
+    pl = _sample_power_law(y_a[idx], np_a[idx], dt=dt, exposure_s=t_e, n_dims=d, rng=g, n_boot=n_boot,
+                           lags=lags)
+    if pl is not None and pl["ok"]:
+        alpha = float(pl["theta"][1])
+        K = float(np.exp(pl["theta"][0]))
+        s_alpha = float(pl["theta"][2])
+        if "boot" in pl:
+            a_lo, a_hi = np.nanpercentile(pl["boot"][:, 1], [2.5, 97.5])
+            a_se = float(np.nanstd(pl["boot"][:, 1], ddof=1))
+        else:
+            a_lo = a_hi = a_se = np.nan
+        status = "ok"
+    else:
+        alpha = K = s_alpha = a_lo = a_hi = a_se = np.nan
+        status = "alpha_not_fitted"
+    return SampleFit(
+        D_um2_s=b * to_D,
+        D_ci95_um2_s=(float(lo * to_D), float(hi * to_D)),
+        alpha=alpha,
+        alpha_ci95=(float(a_lo), float(a_hi)),
+        sigma_um=float(np.sqrt(max(s, 0.0))),
+        x_reduced=float(2.0 * s / b) if b != 0 else np.nan,
+        method=chosen,
+        n_tracks=int(T),
+        n_steps=n_steps_total,
+        D_se_um2_s=se * to_D,
+        sigma2_um2=float(s),
+        alpha_se=a_se,
+        K_um2_s_alpha=K,
+        alpha_sigma_um=float(np.sqrt(max(s_alpha, 0.0))) if np.isfinite(s_alpha) else np.nan,
+        alpha_lags_frames=tuple(int(v) for v in lags),
+        n_boot=int(n_boot if T >= 2 else 0),
+        fit_status=status,
+    )
