@@ -1,0 +1,281 @@
+"""Batch runner: failure isolation, resume after a crash, executors giving identical tables, progress, logs.
+
+The exit codes, file names and summary columns checked here are the output contract in DESIGN.md.
+Most tests use stand-in per-input functions (tests/batch_fakes.py) that read the movies for real but skip
+tracking, so the batch machinery is tested in seconds; the real pipeline is run through the batch at the end.
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import batch_fakes
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+
+from msdkit.batch import DONE_FILE, ERROR_FILE, SUMMARY_FILE, run_batch, stack_name, unique_stack_names
+from msdkit.config import config_from_dict
+from msdkit.errors import ConfigError
+from msdkit.io.atomic import TEMP_MARKER
+from msdkit.schema import BATCH_SUMMARY_COLUMNS
+
+TESTS_DIR = Path(__file__).resolve().parent
+REPO = TESTS_DIR.parent
+BROKEN = ("empty", "nan_filled", "not_a_tiff", "single_frame", "truncated")
+
+
+def _movie(rng, n_frames=24, shape=(32, 32)):
+    return rng.integers(100, 1000, (n_frames, *shape), dtype=np.uint16)
+
+
+def make_inputs(folder: Path, seed: int = 0, n_good: int = 1) -> Path:
+    """One or more good movies among the kinds of broken files a real batch meets."""
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    for i in range(n_good):
+        tifffile.imwrite(folder / f"good{i}.tif", _movie(rng))
+    (folder / "empty.tif").write_bytes(b"")
+    tifffile.imwrite(folder / "nan_filled.tif", np.full((10, 16, 16), np.nan, np.float32))
+    (folder / "not_a_tiff.tif").write_text("frame,x,y\n0,1,2\n")
+    tifffile.imwrite(folder / "single_frame.tif", _movie(rng, n_frames=1))
+    tifffile.imwrite(folder / "truncated.tif", _movie(rng, n_frames=40, shape=(64, 64)))
+    data = (folder / "truncated.tif").read_bytes()
+    (folder / "truncated.tif").write_bytes(data[: len(data) // 2])
+    return folder
+
+
+def make_cfg(base: Path, kind="serial", n_workers=None, seed=0, address=None, inputs=("in/*.tif",)):
+    ex = {"kind": kind}
+    if n_workers:
+        ex["n_workers"] = n_workers
+    if address:
+        ex["address"] = address
+    return config_from_dict({"inputs": list(inputs), "output_dir": "out", "executor": ex,
+                             "acquisition": {"pixel_size_um": 0.1, "frame_interval_s": 0.05},
+                             "analysis": {"seed": seed}}, base_dir=base)
+
+
+def _comparable(df: pd.DataFrame) -> pd.DataFrame:
+    return df.drop(columns=["run_s", "input", "resumed"]).reset_index(drop=True)
+
+
+def test_stack_names_are_file_stems_made_unique(tmp_path):
+    (tmp_path / "folder").mkdir()
+    paths = [Path("a/cells.ome.tif"), Path("b/cells.tif"), Path("c/Cells.tiff"), Path("cells_2.csv"),
+             tmp_path / "folder", Path("tracks.csv.gz")]
+    assert stack_name(paths[0]) == "cells"
+    assert unique_stack_names(paths) == ["cells", "cells_2", "Cells_3", "cells_2_2", "folder", "tracks"]
+
+
+def test_one_good_movie_among_broken_files_completes_with_exit_code_1(tmp_path):
+    make_inputs(tmp_path / "in")
+    result = run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress=False)
+    assert result.exit_code == 1  # DESIGN.md: 1 = some inputs failed, the others complete
+    table = pd.read_csv(tmp_path / "out" / SUMMARY_FILE, keep_default_na=False)
+    assert list(table.columns[: len(BATCH_SUMMARY_COLUMNS)]) == list(BATCH_SUMMARY_COLUMNS)
+    assert table["stack"].tolist() == sorted([*BROKEN, "good0"])
+    status = dict(zip(table["stack"], table["status"], strict=True))
+    assert status.pop("good0") == "ok" and set(status.values()) == {"failed"}
+    good = tmp_path / "out" / "good0"
+    for name in ("summary.json", "tracks.parquet", "track_fits.csv", DONE_FILE):
+        assert (good / name).is_file(), name
+    assert not (good / ERROR_FILE).exists()
+    errors = dict(zip(table["stack"], table["error"], strict=True))
+    assert errors["good0"] == ""
+    expect = {"empty": "empty", "nan_filled": "NaN", "not_a_tiff": "not a readable TIFF",
+              "single_frame": "at least 2 frames", "truncated": "truncated.tif"}
+    for stack in BROKEN:
+        assert expect[stack] in errors[stack] and "\n" not in errors[stack]
+        log = (tmp_path / "out" / stack / ERROR_FILE).read_text()
+        assert "Traceback (most recent call last)" in log and errors[stack] in log
+        assert not (tmp_path / "out" / stack / DONE_FILE).exists()
+    assert "good0: ok" in (tmp_path / "out" / "msdkit.log").read_text()
+
+
+def test_local_processes_give_the_same_table_as_serial(tmp_path):
+    make_inputs(tmp_path / "in", n_good=3)
+    serial = run_batch(make_cfg(tmp_path), output_dir=tmp_path / "serial", process=batch_fakes.fake_process,
+                       progress=False)
+    local = run_batch(make_cfg(tmp_path, kind="local", n_workers=2), output_dir=tmp_path / "local",
+                      process=batch_fakes.fake_process, progress=False)
+    assert serial.exit_code == local.exit_code == 1
+    pd.testing.assert_frame_equal(_comparable(serial.table()), _comparable(local.table()), check_exact=True)
+    assert local.n_ok == 3
+
+
+def test_worker_process_that_dies_fails_only_its_own_input(tmp_path):
+    rng = np.random.default_rng(1)
+    (tmp_path / "in").mkdir()
+    for name in ("a", "crash", "b", "c"):
+        tifffile.imwrite(tmp_path / "in" / f"{name}.tif", _movie(rng))
+    cfg = make_cfg(tmp_path, kind="local", n_workers=2)
+    result = run_batch(cfg, process=batch_fakes.crashing_fake_process, progress=False)
+    status = {r.stack: r.status for r in result.rows}
+    assert status == {"a": "ok", "b": "ok", "c": "ok", "crash": "failed"}
+    crash = next(r for r in result.rows if r.stack == "crash")
+    assert "worker process ended abruptly" in crash.error
+    assert result.exit_code == 1
+
+
+def test_rerun_skips_complete_inputs_and_retries_failed_ones(tmp_path, monkeypatch):
+    make_inputs(tmp_path / "in", n_good=2)
+    calls = tmp_path / "calls.txt"
+    monkeypatch.setenv("MSDKIT_TEST_CALL_LOG", str(calls))
+    cfg = make_cfg(tmp_path)
+    first = run_batch(cfg, process=batch_fakes.fake_process, progress=False)
+    assert calls.read_text().split() == ["good0", "good1"]
+
+    calls.write_text("")
+    second = run_batch(cfg, process=batch_fakes.fake_process, progress=False)
+    assert calls.read_text() == ""  # nothing recomputed
+    assert {r.stack for r in second.rows if r.resumed} == {"good0", "good1"}
+    assert second.n_failed == len(BROKEN)  # failed inputs were tried again (and fail again)
+    pd.testing.assert_frame_equal(_comparable(first.table()), _comparable(second.table()))
+
+    # A repaired input is picked up on the next run.
+    tifffile.imwrite(tmp_path / "in" / "empty.tif", _movie(np.random.default_rng(5)))
+    third = run_batch(cfg, process=batch_fakes.fake_process, progress=False)
+    assert calls.read_text().split() == ["empty"]
+    assert third.n_ok == 3
+
+
+def test_rerun_recomputes_when_settings_input_or_outputs_change_or_forced(tmp_path, monkeypatch):
+    rng = np.random.default_rng(2)
+    (tmp_path / "in").mkdir()
+    for name in ("good0", "good1"):
+        tifffile.imwrite(tmp_path / "in" / f"{name}.tif", _movie(rng))
+    calls = tmp_path / "calls.txt"
+    monkeypatch.setenv("MSDKIT_TEST_CALL_LOG", str(calls))
+
+    def run(**kw):
+        calls.write_text("")
+        run_batch(kw.pop("cfg", make_cfg(tmp_path)), process=batch_fakes.fake_process, progress=False, **kw)
+        return sorted(calls.read_text().split())
+
+    assert run() == ["good0", "good1"]
+    # Where and how the batch runs does not change results: no recomputation.
+    assert run(cfg=make_cfg(tmp_path, kind="local", n_workers=1)) == []
+    # A setting that changes results recomputes everything.
+    assert run(cfg=make_cfg(tmp_path, seed=7)) == ["good0", "good1"]
+    # A changed input file recomputes that input only.
+    tifffile.imwrite(tmp_path / "in" / "good1.tif", _movie(np.random.default_rng(9)))
+    assert run(cfg=make_cfg(tmp_path, seed=7)) == ["good1"]
+    # A missing or altered output file recomputes that input.
+    (tmp_path / "out" / "good0" / "track_fits.csv").unlink()
+    assert run(cfg=make_cfg(tmp_path, seed=7)) == ["good0"]
+    with open(tmp_path / "out" / "good1" / "summary.json", "a") as fh:
+        fh.write(" ")
+    assert run(cfg=make_cfg(tmp_path, seed=7)) == ["good1"]
+    # force recomputes everything.
+    assert run(cfg=make_cfg(tmp_path, seed=7), force=True) == ["good0", "good1"]
+
+
+_BATCH_SCRIPT = textwrap.dedent(
+    """
+    import sys
+    from msdkit.batch import run_batch
+    from msdkit.config import config_from_dict
+    import batch_fakes
+
+    base = sys.argv[1]
+    cfg = config_from_dict({"inputs": ["in/*.tif"], "output_dir": "out", "executor": {"kind": "serial"},
+                            "acquisition": {"pixel_size_um": 0.1, "frame_interval_s": 0.05},
+                            "analysis": {"seed": 0}}, base_dir=base)
+    run_batch(cfg, process=batch_fakes.slow_fake_process, progress="log")
+    """
+)
+
+
+def test_batch_killed_with_sigkill_and_rerun_ends_complete(tmp_path, monkeypatch):
+    rng = np.random.default_rng(3)
+    (tmp_path / "in").mkdir()
+    names = [f"m{i:02d}" for i in range(8)]
+    for name in names:
+        tifffile.imwrite(tmp_path / "in" / f"{name}.tif", _movie(rng))
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(REPO), str(TESTS_DIR)]),
+           "MSDKIT_TEST_DELAY_S": "0.4"}
+    summary = tmp_path / "out" / SUMMARY_FILE
+    proc = subprocess.Popen([sys.executable, "-c", _BATCH_SCRIPT, str(tmp_path)], env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        deadline = time.monotonic() + 60
+        n_done = 0
+        while time.monotonic() < deadline and proc.poll() is None:
+            if summary.exists():
+                n_done = len(pd.read_csv(summary))
+                if n_done >= 3:
+                    break
+            time.sleep(0.05)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    assert 3 <= n_done < len(names), "the batch should be killed mid-way"
+    killed = pd.read_csv(summary)  # complete CSV, never half-written
+    done_before = set(killed["stack"])
+
+    calls = tmp_path / "calls.txt"
+    monkeypatch.setenv("MSDKIT_TEST_CALL_LOG", str(calls))
+    result = run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress=False)
+    assert result.exit_code == 0
+    assert {r.stack for r in result.rows if r.resumed} == done_before
+    assert set(calls.read_text().split()) == set(names) - done_before
+    final = pd.read_csv(summary)
+    assert final["stack"].tolist() == names and (final["status"] == "ok").all()
+    for name in names:
+        folder = tmp_path / "out" / name
+        assert json.loads((folder / "summary.json").read_text())["stack"] == name
+        assert len(pd.read_parquet(folder / "tracks.parquet")) == 24
+        assert (folder / DONE_FILE).is_file()
+    leftovers = [p for p in (tmp_path / "out").rglob("*") if TEMP_MARKER in p.name]
+    assert leftovers == []
+
+
+def test_report_failure_is_logged_and_does_not_fail_the_batch(tmp_path, monkeypatch):
+    report = importlib.import_module("msdkit.report")
+
+    def broken_report(output_dir, rows=None):
+        raise RuntimeError("figure backend exploded")
+
+    monkeypatch.setattr(report, "write_report", broken_report, raising=False)
+    rng = np.random.default_rng(4)
+    (tmp_path / "in").mkdir()
+    tifffile.imwrite(tmp_path / "in" / "only.tif", _movie(rng))
+    result = run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress=False)
+    assert result.exit_code == 0
+    assert "report.html not written: RuntimeError: figure backend exploded" in (
+        tmp_path / "out" / "msdkit.log").read_text()
+
+
+def test_inputs_matching_nothing_is_a_config_error_and_nothing_runs(tmp_path):
+    with pytest.raises(ConfigError, match=r"inputs: no file matched 'in/\*.tif'"):
+        run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress=False)
+    assert not (tmp_path / "out").exists()
+
+
+def test_missing_listed_file_fails_that_input_only(tmp_path):
+    make_inputs(tmp_path / "in")
+    cfg = make_cfg(tmp_path, inputs=("in/good0.tif", "in/gone.tif"))
+    result = run_batch(cfg, process=batch_fakes.fake_process, progress=False)
+    assert [r.status for r in result.rows] == ["ok", "failed"]
+    assert result.exit_code == 1
+
+
+def test_plain_log_lines_when_not_a_terminal_and_bars_on_request(tmp_path, capfd):
+    make_inputs(tmp_path / "in")
+    run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress="log")
+    err = capfd.readouterr().err
+    assert "[2/6] good0: ok" in err
+    assert "truncated: failed: truncated.tif" in err
+    run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress="bars", force=True)
+    err = capfd.readouterr().err
+    assert "stacks: 100%" in err and "6/6" in err
