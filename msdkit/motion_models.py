@@ -1,0 +1,454 @@
+"""Motion models as MSD laws, and their likelihood for the steps of a track.
+
+The MSD laws (public, in µm²) are the observed ones: positions averaged over the exposure (motion blur) and
+carrying Gaussian localisation noise of SD ``sigma_um`` per axis.
+
+The likelihood compares models through the steps (increments) of a track rather than through a fit to its
+time-averaged MSD, whose points are strongly correlated. For any motion with stationary increments, the
+covariance of the steps follows from the per-axis MSD law M(n) of the observed positions,
+
+    Cov(Δx_k, Δx_{k+τ}) = ½ [M(τ + 1) + M(|τ − 1|) − 2 M(τ)],
+
+and the steps' periodogram has the exact finite-length expectation
+E I(ω_k) = Σ_{|τ|<N} (1 − |τ|/N) γ(τ) e^{-i ω_k τ}. The log-likelihood is the debiased Whittle likelihood
+(Sykulski et al. 2019), summed over axes, including the zero frequency (whose periodogram is the squared
+end-to-end displacement over N, with expectation M(N)/N). A model with a constant velocity (directed motion)
+drops the zero frequency instead, which leaves its mean free. Scales (D, K, L²) are profiled out in closed
+form; shape parameters (alpha, confinement time, noise ratio) are profiled on grids with parabolic
+refinement, so all tracks of one length are evaluated with a few matrix products.
+
+References
+----------
+A. M. Sykulski, S. C. Olhede, A. P. Guillaumin, J. M. Lilly & J. J. Early, Biometrika 106, 251 (2019),
+doi:10.1093/biomet/asy071 (debiased Whittle likelihood).
+P. Whittle, J. R. Stat. Soc. B 15, 125 (1953).
+A. J. Berglund, Phys. Rev. E 82, 011917 (2010), doi:10.1103/PhysRevE.82.011917 (blur and noise in the MSD).
+M. J. Saxton & K. Jacobson, Annu. Rev. Biophys. Biomol. Struct. 26, 373 (1997) (confined and directed MSD).
+R. Metzler & J. Klafter, Phys. Rep. 339, 1 (2000) (anomalous diffusion).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+
+from .errors import expected_got
+
+__all__ = [
+    "brownian_msd_um2",
+    "fbm_msd_um2",
+    "confined_msd_um2",
+    "directed_msd_um2",
+    "step_autocovariance",
+    "expected_periodogram",
+]
+
+#: Grids of the profiled shape parameters.
+ALPHA_GRID = np.round(np.arange(0.05, 1.951, 0.05), 10)
+NOISE_RATIO_GRID = np.concatenate([[0.0], np.logspace(-3, 3, 25)])
+_N_TAU = 20
+#: Fraction of the steps tapered (half at each end) before the periodogram; see split_cosine_taper.
+TAPER_FRACTION = 0.2
+#: Odd modes of the exact confined-MSD series kept (k = 1, 3, …, 29); the rest relax within a frame.
+_ODD_MODES = np.arange(1, 30, 2, dtype=float)
+
+
+# ---------------------------------------------------------------------------------------------- MSD laws
+def _as_t(t_s) -> np.ndarray:
+    t = np.asarray(t_s, dtype=float)
+    if np.any(t < 0):
+        raise ValueError(expected_got("t_s", ">= 0", t_s, "Lags are non-negative times in seconds."))
+    return t
+
+
+def _blurred_power(n: np.ndarray, alpha: float, e: float) -> np.ndarray:
+    """E_v|n+v|^α − E_v|v|^α for v triangular on [−e, e] (exposure e in the units of n), n ≥ e.
+
+    Closed form of the uniform-exposure average of a power-law MSD (for α = 1 it gives n − e/3).
+    """
+    n = np.asarray(n, dtype=float)
+    if e <= 1e-6 * max(1.0, float(np.max(n, initial=1.0))):
+        return np.where(n > 0, n**alpha, 0.0)
+    a1, a2 = alpha + 1.0, alpha + 2.0
+    nn = np.maximum(n, e)
+    first = ((nn + e) ** a2 + (nn - e) ** a2 - 2.0 * nn**a2) / (e * e * a1 * a2)
+    second = 2.0 * e**alpha / (a1 * a2)
+    return np.where(n > 0, first - second, 0.0)
+
+
+def _blurred_confined(n: np.ndarray, tau: np.ndarray, e: float) -> np.ndarray:
+    """Exposure-averaged confined MSD in units of its per-axis plateau; n and tau in frames.
+
+    Exact series for reflecting walls, m(t) = 1 − (96/π⁴) Σ_{k odd} k⁻⁴ exp(−k² π² t / (12 τ)) with
+    τ = L²/(12 D); each exponential is averaged over the exposure in closed form.
+    Returns an array of shape (tau.size, n.size).
+    """
+    n0 = np.asarray(n, dtype=float)
+    n = np.maximum(n0, e)[None, None, :]  # the closed form holds for n ≥ e; n = 0 is set to 0 below
+    tau = np.asarray(tau, dtype=float)[:, None, None]
+    k = _ODD_MODES[None, :, None]
+    amp = 96.0 / np.pi**4 / k**4
+    rate = k * k * np.pi**2 / (12.0 * tau)  # per frame
+    if e > 0:
+        a = rate * e
+        small = a < 1e-4
+        a_safe = np.where(small, 1.0, a)
+        J = np.where(small, 1.0 - a / 3.0, 2.0 * (a_safe - 1.0 + np.exp(-a_safe)) / a_safe**2)
+        # H(a) exp(−rate n) with H(a) = (2 cosh a − 2)/a², written without overflow (n ≥ e so a ≤ rate n)
+        decay = np.where(
+            small,
+            (1.0 + a * a / 12.0) * np.exp(-rate * n),
+            (np.exp(a - rate * n) + np.exp(-a - rate * n) - 2.0 * np.exp(-rate * n)) / a_safe**2,
+        )
+    else:
+        J = np.ones_like(rate)
+        decay = np.exp(-rate * n)
+    # m_b(n) = Σ amp [J − H exp(−rate n)]   (the plateau part cancels between the two exposure averages)
+    m = np.sum(amp * (J - decay), axis=1)
+    return np.where(n0[None, :] > 0, m, 0.0)
+
+
+def brownian_msd_um2(t_s, *, D_um2_s, sigma_um=0.0, exposure_s=0.0, n_dims=2) -> np.ndarray:
+    """Observed MSD of Brownian motion: 2d [D (t − t_E/3) + σ²] for t ≥ t_E, 0 at t = 0.
+
+    References
+    ----------
+    A. J. Berglund, Phys. Rev. E 82, 011917 (2010); T. Savin & P. S. Doyle, Biophys. J. 88, 623 (2005).
+    """
+    t = _as_t(t_s)
+    return np.where(t > 0, 2 * n_dims * (D_um2_s * (t - exposure_s / 3.0) + sigma_um**2), 0.0)
+
+
+def fbm_msd_um2(t_s, *, K_um2_s_alpha, alpha, sigma_um=0.0, exposure_s=0.0, n_dims=2) -> np.ndarray:
+    """Observed MSD of fractional Brownian motion, 2d K t^α, averaged over the exposure, plus noise.
+
+    For exposure t_E ≤ t the uniform average gives
+    2d K [((t+t_E)^{α+2} + (t−t_E)^{α+2} − 2 t^{α+2}) / (t_E² (α+1)(α+2)) − 2 t_E^α / ((α+1)(α+2))] + 2d σ².
+
+    References
+    ----------
+    R. Metzler & J. Klafter, Phys. Rep. 339, 1 (2000); A. J. Berglund, Phys. Rev. E 82, 011917 (2010).
+    """
+    t = _as_t(t_s)
+    if exposure_s > 0:
+        m = _blurred_power(t / exposure_s, alpha, 1.0) * exposure_s**alpha
+    else:
+        m = np.where(t > 0, t**alpha, 0.0)
+    return np.where(t > 0, 2 * n_dims * (K_um2_s_alpha * m + sigma_um**2), 0.0)
+
+
+def confined_msd_um2(t_s, *, D_um2_s, box_um, n_dims=2, exact=True) -> np.ndarray:
+    """MSD of Brownian motion reflected in a square (cube) of side L, started uniformly inside.
+
+    ``exact=False`` gives the common one-exponential form d (L²/6)(1 − exp(−12 D t / L²)), i.e.
+    (L²/3)(1 − exp(−12 D t / L²)) in 2D; ``exact=True`` the reflecting-wall series
+    d (L²/6)[1 − (96/π⁴) Σ_{k odd} k⁻⁴ exp(−k² π² D t / L²)]. Both start as 2dDt and level off at d L²/6
+    (L²/6 per axis).
+
+    References
+    ----------
+    M. J. Saxton & K. Jacobson, Annu. Rev. Biophys. Biomol. Struct. 26, 373 (1997).
+    """
+    t = _as_t(t_s)
+    L2 = float(box_um) ** 2
+    if not exact:
+        return n_dims * L2 / 6.0 * (1.0 - np.exp(-12.0 * D_um2_s * t / L2))
+    k = np.arange(1, 400, 2, dtype=float).reshape((-1,) + (1,) * t.ndim)
+    s = np.sum(k**-4.0 * np.exp(-(k**2) * np.pi**2 * D_um2_s * t[None] / L2), axis=0)
+    return n_dims * L2 / 6.0 * (1.0 - 96.0 / np.pi**4 * s)
+
+
+def directed_msd_um2(t_s, *, D_um2_s, speed_um_s, n_dims=2) -> np.ndarray:
+    """MSD of diffusion plus constant velocity: 2d D t + v² t² (Saxton & Jacobson 1997)."""
+    t = _as_t(t_s)
+    return 2 * n_dims * D_um2_s * t + float(speed_um_s) ** 2 * t**2
+
+
+# ------------------------------------------------------------------------------- steps and periodograms
+def step_autocovariance(msd_axis: np.ndarray) -> np.ndarray:
+    """Autocovariance of the steps from the per-axis MSD of positions at lags 0..N (last axis).
+
+    γ(τ) = ½ [M(τ+1) + M(|τ−1|) − 2 M(τ)] for τ = 0..N−1 (stationary increments).
+    """
+    M = np.asarray(msd_axis, dtype=float)
+    prev = np.concatenate([M[..., 1:2], M[..., :-2]], axis=-1)  # M(|τ−1|)
+    return 0.5 * (M[..., 1:] + prev - 2.0 * M[..., :-1])
+
+
+def split_cosine_taper(n_steps: int, fraction: float = TAPER_FRACTION) -> np.ndarray:
+    """Split-cosine-bell (Tukey) taper of length N, normalised to Σ h² = 1.
+
+    ``fraction`` of the points (half at each end) are tapered by a raised cosine; 0 gives the flat
+    window 1/√N. A taper that vanishes at the ends removes the boundary term that otherwise couples all
+    low-frequency periodogram values of steps whose positions are stationary (immobile or confined
+    particles), see Dahlhaus (1988).
+    """
+    N = int(n_steps)
+    h = np.ones(N)
+    m = int(np.floor(fraction * N / 2.0))
+    if m >= 1:
+        ramp = 0.5 * (1.0 - np.cos(np.pi * (np.arange(m) + 0.5) / m))
+        h[:m] = ramp
+        h[N - m:] = ramp[::-1]
+    return h / np.sqrt(np.sum(h * h))
+
+
+def expected_periodogram(msd_axis: np.ndarray, taper: np.ndarray | None = None) -> np.ndarray:
+    """Exact expectation of the (tapered) periodogram of N steps, at ω_k = 2πk/N, k = 0..N//2.
+
+    ``msd_axis`` holds M(0..N) per axis (last axis). The periodogram is |Σ_t h_t Δx_t e^{−iω t}|² with
+    taper h (Σ h² = 1; default flat, h = 1/√N), whose expectation is Σ_{|τ|<N} γ(τ) c_h(τ) e^{−iωτ} with
+    c_h(τ) = Σ_t h_t h_{t+|τ|}.
+
+    References
+    ----------
+    Sykulski et al., Biometrika 106, 251 (2019); R. Dahlhaus, Ann. Stat. 16, 808 (1988).
+    """
+    g = step_autocovariance(msd_axis)
+    N = g.shape[-1]
+    if taper is None:
+        c = 1.0 - np.arange(N) / N
+    else:
+        f = np.fft.rfft(taper, 2 * N)
+        c = np.fft.irfft(f.real**2 + f.imag**2, 2 * N)[:N]
+    a = g * c
+    return 2.0 * np.fft.rfft(a, axis=-1).real - a[..., :1]
+
+
+def frequency_weights(n_steps: int) -> np.ndarray:
+    """Whittle weights: ½ at frequency 0 and at Nyquist (one real coefficient), 1 elsewhere."""
+    w = np.ones(n_steps // 2 + 1)
+    w[0] = 0.5
+    if n_steps % 2 == 0:
+        w[-1] = 0.5
+    return w
+
+
+def periodograms(steps: np.ndarray, taper: np.ndarray | None = None) -> np.ndarray:
+    """Periodogram of each track's steps, summed over axes: steps (n_tracks, N, n_axes) → (n_tracks, N//2+1)."""
+    N = steps.shape[1]
+    h = np.full(N, 1.0 / np.sqrt(N)) if taper is None else taper
+    F = np.fft.rfft(steps * h[None, :, None], axis=1)
+    return np.sum(F.real**2 + F.imag**2, axis=2)
+
+
+# ----------------------------------------------------------------------------------------- model banks
+@dataclass(frozen=True)
+class _Bank:
+    """Spectral shapes for one track length and exposure ratio."""
+
+    n_steps: int
+    weights: np.ndarray  # (F,)
+    fbm: np.ndarray  # (A, F): power-law shapes, per-axis MSD = scale × n^α (blurred)
+    fbm_msd_end: np.ndarray  # (A,): shape MSD at lag N (for end-to-end variance)
+    tau: np.ndarray  # (C,) confinement times, frames
+    conf: np.ndarray  # (C, F): confined shapes, per-axis plateau = scale
+    noise: np.ndarray  # (F,): noise shape, per-axis MSD = scale × r for n ≥ 1
+    taper: np.ndarray  # (N,)
+
+
+@lru_cache(maxsize=96)
+def _bank(n_steps: int, exposure_ratio: float) -> _Bank:
+    N = int(n_steps)
+    e = float(exposure_ratio)
+    n = np.arange(N + 1, dtype=float)
+    fbm_msd = np.stack([_blurred_power(n, a, e) for a in ALPHA_GRID])
+    tau = np.logspace(np.log10(0.25), np.log10(max(4.0 * N, 20.0)), _N_TAU)
+    conf_msd = _blurred_confined(n, tau, e)
+    noise_msd = np.where(n > 0, 1.0, 0.0)
+    h = split_cosine_taper(N)
+    return _Bank(
+        n_steps=N,
+        weights=frequency_weights(N),
+        fbm=expected_periodogram(fbm_msd, h),
+        fbm_msd_end=fbm_msd[:, -1],
+        tau=tau,
+        conf=expected_periodogram(conf_msd, h),
+        noise=expected_periodogram(noise_msd, h),
+        taper=h,
+    )
+
+
+def _parabola(y0, y1, y2):
+    """Vertex offset (in grid steps, clipped to ±1) and value of the parabola through three points."""
+    den = y0 - 2.0 * y1 + y2
+    ok = den < -1e-12
+    safe = np.where(ok, den, -1.0)
+    off = np.where(ok, np.clip(0.5 * (y0 - y2) / safe, -1.0, 1.0), 0.0)
+    val = np.where(ok, y1 - 0.25 * (y0 - y2) * off, y1)
+    return off, np.maximum(val, y1)
+
+
+def _profile_noise(ll: np.ndarray):
+    """Maximise ll (..., R) over the noise-ratio grid with parabolic refinement in log r.
+
+    Returns (max value, refined log10 r or −inf for r = 0, index).
+    """
+    R = ll.shape[-1]
+    idx = np.argmax(ll, axis=-1)
+    best = np.take_along_axis(ll, idx[..., None], -1)[..., 0]
+    logr = np.log10(NOISE_RATIO_GRID[1:])
+    step = logr[1] - logr[0]
+    interior = (idx >= 2) & (idx <= R - 2)
+    i0 = np.clip(idx - 1, 0, R - 1)
+    i2 = np.clip(idx + 1, 0, R - 1)
+    y0 = np.take_along_axis(ll, i0[..., None], -1)[..., 0]
+    y2 = np.take_along_axis(ll, i2[..., None], -1)[..., 0]
+    off, val = _parabola(y0, best, y2)
+    best = np.where(interior, val, best)
+    lr = np.where(idx >= 1, logr[np.clip(idx - 1, 0, R - 2)], -np.inf) + np.where(interior, off * step, 0.0)
+    return best, lr, idx
+
+
+def _loglik_grid(P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int,
+                 drop_zero: bool = False):
+    """Profile (scale-maximised) Whittle log-likelihood on shapes × noise ratios.
+
+    P: (T, F) periodograms summed over axes; shapes: (S, F). Returns ll (T, S, R) and scale (T, S, R).
+    """
+    spec = shapes[:, None, :] + NOISE_RATIO_GRID[None, :, None] * noise[None, None, :]  # (S, R, F)
+    spec = np.maximum(spec, 1e-300)
+    W = w.sum()
+    wq = w.copy()
+    if drop_zero:
+        wq[0] = 0.0
+    logdet = np.log(spec) @ w  # (S, R)
+    Q = wq[None, None, :] / spec  # (S, R, F)
+    S, R, F = spec.shape
+    scale = (P @ Q.reshape(S * R, F).T).reshape(P.shape[0], S, R) / (n_axes * W)
+    scale = np.maximum(scale, 1e-300)
+    ll = -n_axes * (logdet[None] + W * np.log(scale) + W)
+    return ll, scale
+
+
+@dataclass(frozen=True)
+class StepFits:
+    """Per-track profile likelihoods and fitted parameters (frame units; see :func:`fit_step_models`)."""
+
+    ll_immobile: np.ndarray
+    ll_brownian: np.ndarray
+    ll_fbm: np.ndarray
+    ll_confined: np.ndarray
+    ll_directed: np.ndarray
+    alpha_profile: np.ndarray  # (T, A): profile log-likelihood over ALPHA_GRID
+    alpha: np.ndarray
+    alpha_lo: np.ndarray
+    alpha_hi: np.ndarray
+    fbm_scale: np.ndarray  # per-axis MSD at one frame, power-law part (2 K Δt^α)
+    fbm_noise: np.ndarray  # per-axis noise MSD 2σ² (same units)
+    brown_scale: np.ndarray  # per-axis 2 D Δt
+    brown_noise: np.ndarray
+    immobile_noise: np.ndarray
+    conf_plateau: np.ndarray  # per-axis plateau L²/6
+    conf_tau: np.ndarray  # confinement time L²/(12 D), frames
+    conf_noise: np.ndarray
+    dir_scale: np.ndarray  # per-axis 2 D Δt of the directed model
+    dir_noise: np.ndarray
+    end_to_end: np.ndarray  # (T, n_axes) sum of steps
+
+
+def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float = 1.920729) -> StepFits:
+    """Fit the step models to tracks of one length.
+
+    Parameters
+    ----------
+    steps : ndarray of shape (n_tracks, n_steps, n_axes), µm (any unit; scales come out in its square)
+    exposure_ratio : float
+        Exposure over frame interval, in [0, 1].
+    ci_drop : float, default=1.92 (χ²₁ 95 % / 2)
+        Drop of the profile log-likelihood that bounds the alpha interval.
+
+    Returns
+    -------
+    StepFits
+    """
+    T, N, n_axes = steps.shape
+    bank = _bank(N, round(float(exposure_ratio), 4))
+    P = periodograms(steps, bank.taper)
+    Pd = periodograms(steps - steps.mean(axis=1, keepdims=True), bank.taper)  # for the free-mean model
+    w = bank.weights
+    A = ALPHA_GRID.size
+
+    ll_f, sc_f = _loglik_grid(P, w, bank.fbm, bank.noise, n_axes)  # (T, A, R)
+    prof, lr_f, _ = _profile_noise(ll_f)  # (T, A)
+    ia = np.argmax(prof, axis=1)
+    rows = np.arange(T)
+    inner = (ia >= 1) & (ia <= A - 2)
+    y0 = prof[rows, np.clip(ia - 1, 0, A - 1)]
+    y1 = prof[rows, ia]
+    y2 = prof[rows, np.clip(ia + 1, 0, A - 1)]
+    off, val = _parabola(y0, y1, y2)
+    da = ALPHA_GRID[1] - ALPHA_GRID[0]
+    alpha = ALPHA_GRID[ia] + np.where(inner, off * da, 0.0)
+    ll_fbm = np.where(inner, val, y1)
+    lo, hi = _interval(prof, ll_fbm - ci_drop)
+    i1 = int(np.argmin(np.abs(ALPHA_GRID - 1.0)))
+    ll_brown_r = ll_f[:, i1, :]
+    ll_brown, _, ib = _profile_noise(ll_brown_r)
+    ir = np.argmax(ll_f[rows, ia, :], axis=1)
+    fbm_scale = sc_f[rows, ia, ir]
+    fbm_noise = fbm_scale * NOISE_RATIO_GRID[ir]
+    brown_scale = sc_f[rows, i1, ib]
+    brown_noise = brown_scale * NOISE_RATIO_GRID[ib]
+
+    ll_c, sc_c = _loglik_grid(P, w, bank.conf, bank.noise, n_axes)  # (T, C, R)
+    cprof, _, _ = _profile_noise(ll_c)
+    ic = np.argmax(cprof, axis=1)
+    C = bank.tau.size
+    cinner = (ic >= 1) & (ic <= C - 2)
+    c0 = cprof[rows, np.clip(ic - 1, 0, C - 1)]
+    c1 = cprof[rows, ic]
+    c2 = cprof[rows, np.clip(ic + 1, 0, C - 1)]
+    coff, cval = _parabola(c0, c1, c2)
+    ll_conf = np.where(cinner, cval, c1)
+    ltau = np.log(bank.tau)
+    conf_tau = np.exp(ltau[ic] + np.where(cinner, coff * (ltau[1] - ltau[0]), 0.0))
+    icr = np.argmax(ll_c[rows, ic, :], axis=1)
+    conf_plateau = sc_c[rows, ic, icr]
+    conf_noise = conf_plateau * NOISE_RATIO_GRID[icr]
+
+    # immobile: noise only
+    spec_n = np.maximum(bank.noise, 1e-300)
+    W = w.sum()
+    sc_n = np.maximum(P @ (w / spec_n) / (n_axes * W), 1e-300)
+    ll_imm = -n_axes * (np.log(spec_n) @ w + W * np.log(sc_n) + W)
+
+    # directed: Brownian steps with a free mean (zero frequency left out of the fit)
+    ll_d, sc_d = _loglik_grid(Pd, w, bank.fbm[i1:i1 + 1], bank.noise, n_axes, drop_zero=True)
+    ll_dir, _, idr = _profile_noise(ll_d[:, 0, :])
+    dir_scale = sc_d[rows, 0, idr]
+    dir_noise = dir_scale * NOISE_RATIO_GRID[idr]
+
+    return StepFits(
+        ll_immobile=ll_imm, ll_brownian=ll_brown, ll_fbm=ll_fbm, ll_confined=ll_conf, ll_directed=ll_dir,
+        alpha_profile=prof, alpha=alpha, alpha_lo=lo, alpha_hi=hi,
+        fbm_scale=fbm_scale, fbm_noise=fbm_noise, brown_scale=brown_scale, brown_noise=brown_noise,
+        immobile_noise=sc_n, conf_plateau=conf_plateau, conf_tau=conf_tau, conf_noise=conf_noise,
+        dir_scale=dir_scale, dir_noise=dir_noise, end_to_end=steps.sum(axis=1),
+    )
+
+
+def _interval(prof: np.ndarray, level: np.ndarray):
+    """Where a profile (T, A) on ALPHA_GRID crosses ``level`` either side of its maximum (linear interp.)."""
+    T, A = prof.shape
+    above = prof >= level[:, None]
+    ia = np.argmax(prof, axis=1)
+    idx = np.arange(A)[None, :]
+    # last index below level to the left of the max, first below level to the right
+    left_below = np.where((~above) & (idx < ia[:, None]), idx, -1).max(axis=1)
+    right_below = np.where((~above) & (idx > ia[:, None]), idx, A).min(axis=1)
+    rows = np.arange(T)
+    g = ALPHA_GRID
+
+    def cross(i_out, i_in):
+        y_out = prof[rows, i_out]
+        y_in = prof[rows, i_in]
+        frac = np.clip((level - y_out) / np.where(y_in - y_out > 0, y_in - y_out, 1.0), 0.0, 1.0)
+        return g[i_out] + frac * (g[i_in] - g[i_out])
+
+    lo = np.where(left_below >= 0, cross(np.clip(left_below, 0, A - 1), np.clip(left_below + 1, 0, A - 1)), g[0])
+    hi = np.where(right_below < A, cross(np.clip(right_below, 0, A - 1), np.clip(right_below - 1, 0, A - 1)),
+                  g[-1])
+    return lo, hi
