@@ -27,7 +27,7 @@ WIDEFIELD_SIGMA_PER_LAMBDA_NA = 0.21
 #: per axis is below 1e-5 of the total.
 WINDOW_SIGMAS = 4.5
 
-#: Out-of-focus spots (beyond the focal depth) are faint; they are drawn within +-3 SD (99.5 % of their light).
+#: Out-of-focus spots (beyond the focal depth) are faint: drawn within +-3 SD (99.5 % of their light).
 WINDOW_SIGMAS_DEFOCUSED = 3.0
 
 #: Window half-widths are rounded up to one of these sizes (fewer groups to draw, fewer numpy calls).
@@ -75,7 +75,9 @@ def psf_sigma_um(*, wavelength_nm: float, numerical_aperture: float) -> float:
         raise ValueError(expected_got("wavelength_nm", "> 0", wavelength_nm, "Give the wavelength in nm."))
     if not 0 < numerical_aperture < 1.7:
         raise ValueError(
-            expected_got("numerical_aperture", "between 0 and 1.7", numerical_aperture, "Give the objective NA.")
+            expected_got(
+                "numerical_aperture", "between 0 and 1.7", numerical_aperture, "Give the objective NA."
+            )
         )
     return WIDEFIELD_SIGMA_PER_LAMBDA_NA * wavelength_nm * 1e-3 / numerical_aperture
 
@@ -109,8 +111,9 @@ def defocus_area_factor(z_um, *, focal_depth_um: float | None) -> np.ndarray:
     return 1.0 + (2.0 * z / float(focal_depth_um)) ** 2
 
 
-def _add_spots(image: np.ndarray, x: np.ndarray, y: np.ndarray, photons: np.ndarray, sigma: np.ndarray,
-               half: int) -> None:
+def _add_spots(
+    image: np.ndarray, x: np.ndarray, y: np.ndarray, photons: np.ndarray, sigma: np.ndarray, half: int
+) -> None:
     """Add pixel-integrated Gaussian spots that all use a window of half-width ``half`` pixels."""
     ny, nx = image.shape
     offsets = np.arange(-half, half + 1)
@@ -141,7 +144,7 @@ def expected_photon_image(
     background_photons=0.0,
     window_sigmas=WINDOW_SIGMAS,
 ) -> np.ndarray:
-    """Expected photons per pixel of Gaussian spots, integrated exactly over each pixel.
+    """Compute the expected photons per pixel of Gaussian spots, integrated exactly over each pixel.
 
     Parameters
     ----------
@@ -225,7 +228,8 @@ def camera_counts(
     Notes
     -----
     Detected photons are Poisson distributed (shot noise, variance = mean); read noise is Gaussian and
-    independent of the signal (common practice; for sCMOS cameras see Huang et al. 2013, Nat. Methods 10:653, from memory).
+    independent of the signal (common practice; for sCMOS cameras see Huang et al. 2013, Nat. Methods
+    10:653, from memory).
     Photons here are photoelectrons: quantum efficiency is folded into the photon numbers.
     """
     g = _rng(rng)
@@ -247,7 +251,7 @@ def emitter_image(
     focal_depth_um: float | None = None,
     background_photons=0.0,
 ) -> np.ndarray:
-    """Expected photon image of one frame from particles sampled at sub-steps of the exposure.
+    """Compute the expected photon image of one frame from particles sampled at sub-steps of the exposure.
 
     Parameters
     ----------
@@ -283,8 +287,13 @@ def emitter_image(
         sigma = sigma * np.sqrt(w)
         reach = np.where(w <= 2.0, WINDOW_SIGMAS, WINDOW_SIGMAS_DEFOCUSED)
     return expected_photon_image(
-        x.ravel(), y.ravel(), per_step.ravel(), frame_shape=frame_shape, psf_sigma_px=sigma.ravel(),
-        background_photons=background_photons, window_sigmas=reach.ravel(),
+        x.ravel(),
+        y.ravel(),
+        per_step.ravel(),
+        frame_shape=frame_shape,
+        psf_sigma_px=sigma.ravel(),
+        background_photons=background_photons,
+        window_sigmas=reach.ravel(),
     )
 
 
@@ -313,13 +322,21 @@ def iter_movie_frames(
     n = np.broadcast_to(np.asarray(photons, dtype=float), x.shape[:2])
     for k in range(x.shape[0]):
         expected = emitter_image(
-            x[k], y[k], n[k], frame_shape=frame_shape, psf_sigma_px=psf_sigma_px,
-            z_um=None if z is None else z[k], focal_depth_um=focal_depth_um,
+            x[k],
+            y[k],
+            n[k],
+            frame_shape=frame_shape,
+            psf_sigma_px=psf_sigma_px,
+            z_um=None if z is None else z[k],
+            focal_depth_um=focal_depth_um,
             background_photons=background_photons,
         )
         yield camera_counts(
-            expected, read_noise_electrons=read_noise_electrons, gain_adu_per_electron=gain_adu_per_electron,
-            offset_adu=offset_adu, rng=g,
+            expected,
+            read_noise_electrons=read_noise_electrons,
+            gain_adu_per_electron=gain_adu_per_electron,
+            offset_adu=offset_adu,
+            rng=g,
         )
 
 
@@ -372,10 +389,18 @@ def render_movie(
     x = np.asarray(x_px, dtype=float)
     out = np.empty((x.shape[0], int(frame_shape[0]), int(frame_shape[1])), dtype=np.uint16)
     frames = iter_movie_frames(
-        x, y_px, photons, frame_shape=frame_shape, psf_sigma_px=psf_sigma_px, z_um=z_um,
-        focal_depth_um=focal_depth_um, background_photons=background_photons,
-        read_noise_electrons=read_noise_electrons, gain_adu_per_electron=gain_adu_per_electron,
-        offset_adu=offset_adu, rng=rng,
+        x,
+        y_px,
+        photons,
+        frame_shape=frame_shape,
+        psf_sigma_px=psf_sigma_px,
+        z_um=z_um,
+        focal_depth_um=focal_depth_um,
+        background_photons=background_photons,
+        read_noise_electrons=read_noise_electrons,
+        gain_adu_per_electron=gain_adu_per_electron,
+        offset_adu=offset_adu,
+        rng=rng,
     )
     for k, frame in enumerate(frames):
         out[k] = frame

@@ -173,7 +173,8 @@ class SceneRecipe(BaseModel):
         bad = set('/\\:*?"<>|') & set(v)
         if not v.strip() or bad:
             raise ValueError(
-                f"name must be a plain file name; got {v!r}. Use letters, digits, '_' or '-' (it names the files)."
+                f"name must be a plain file name; got {v!r}. Use letters, digits, '_' or '-' "
+                "(it names the files)."
             )
         return v
 
@@ -181,7 +182,8 @@ class SceneRecipe(BaseModel):
     def _exposure_fits_frame(self):
         if self.exposure_s > self.frame_interval_s * (1 + 1e-9):
             raise ValueError(
-                f"exposure_s must be <= frame_interval_s; got exposure_s={self.exposure_s} > frame_interval_s="
+                f"exposure_s must be <= frame_interval_s; got exposure_s={self.exposure_s} > "
+                f"frame_interval_s="
                 f"{self.frame_interval_s}. The shutter cannot stay open longer than a frame."
             )
         return self
@@ -198,8 +200,9 @@ class SceneRecipe(BaseModel):
         if fixed is not None:
             return fixed + 0.0 * np.asarray(diameter_nm, float)
         eta = self.viscosity_mpa_s() if viscosity_mpa_s is None else viscosity_mpa_s
-        return stokes_einstein_D_um2_s(0.5 * np.asarray(diameter_nm, float), temperature_c=self.temperature_c,
-                                       viscosity_mpa_s=eta)
+        return stokes_einstein_D_um2_s(
+            0.5 * np.asarray(diameter_nm, float), temperature_c=self.temperature_c, viscosity_mpa_s=eta
+        )
 
 
 _NESTED: dict[str, type[BaseModel]] = {"optics": Optics, "camera": Camera, "populations": Population}
@@ -211,7 +214,7 @@ def _keys(model: type[BaseModel]) -> list[str]:
 
 
 def _model_at(loc: tuple) -> list[type[BaseModel]]:
-    """The recipe model(s) that hold the key at ``loc`` (several for the motion union)."""
+    """Return the recipe model(s) that hold the key at ``loc`` (several for the motion union)."""
     parts = [p for p in loc[:-1] if isinstance(p, str)]
     if not parts:
         return [SceneRecipe]
@@ -232,7 +235,11 @@ def _format(exc: ValidationError, source: str) -> str:
         if err["type"] == "extra_forbidden":
             valid = sorted({k for m in _model_at(loc) for k in _keys(m)})
             near = difflib.get_close_matches(str(loc[-1]), valid, n=1, cutoff=0.5)
-            hint = f" (did you mean '{near[0]}'?)" if near else (f" (valid keys: {', '.join(valid)})" if valid else "")
+            hint = (
+                f" (did you mean '{near[0]}'?)"
+                if near
+                else (f" (valid keys: {', '.join(valid)})" if valid else "")
+            )
             lines.append(f"{source}: {key_path}: unknown key{hint}")
         elif err["type"] == "missing":
             lines.append(f"{source}: {key_path}: required key is missing")
@@ -255,7 +262,9 @@ def recipe_from_dict(data: dict, *, source: str = "<recipe>", name: str | None =
         Naming the source, the key path and (for unknown keys) the nearest valid key.
     """
     if not isinstance(data, dict):
-        raise ConfigError(f"{source}: a scene recipe must be a mapping of keys to values; got {type(data).__name__}.")
+        raise ConfigError(
+            f"{source}: a scene recipe must be a mapping of keys to values; got {type(data).__name__}."
+        )
     if name is not None and "name" not in data:
         data = {**data, "name": name}
     try:

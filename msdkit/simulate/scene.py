@@ -99,15 +99,17 @@ class _Box:
 
 
 def _scene_box(recipe: SceneRecipe) -> tuple[_Box, float]:
-    """Simulated volume (image coordinates, µm) and the volume 'in view' used to set particle numbers."""
+    """Return the simulated volume (image coordinates, µm) and its ratio to the volume in view."""
     ps = recipe.pixel_size_um
     opt = recipe.optics
     sigma = opt.sigma_um()
     if opt.margin_um is not None:
         margin = float(opt.margin_um)
     else:
-        area_factor = 1.0 if opt.n_dims == 2 else min(
-            1.0 + (opt.slab_thickness_um() / opt.focal_depth_um) ** 2, MAX_DEFOCUS_AREA_FACTOR
+        area_factor = (
+            1.0
+            if opt.n_dims == 2
+            else min(1.0 + (opt.slab_thickness_um() / opt.focal_depth_um) ** 2, MAX_DEFOCUS_AREA_FACTOR)
         )
         margin = WINDOW_SIGMAS * sigma * math.sqrt(area_factor) + ps
         for pop in recipe.populations:
@@ -139,16 +141,18 @@ class _Particles:
     photons: list[float] = field(default_factory=list)
 
     def table(self) -> pd.DataFrame:
-        return pd.DataFrame({
-            "particle": np.arange(len(self.population), dtype=np.int64),
-            "population": self.population,
-            "motion_model": self.model,
-            "diameter_nm": self.diameter_nm,
-            "D_um2_s": self.D_um2_s,
-            "alpha": self.alpha,
-            "K_um2_s_alpha": self.K_um2_s_alpha,
-            "photons": self.photons,
-        })
+        return pd.DataFrame(
+            {
+                "particle": np.arange(len(self.population), dtype=np.int64),
+                "population": self.population,
+                "motion_model": self.model,
+                "diameter_nm": self.diameter_nm,
+                "D_um2_s": self.D_um2_s,
+                "alpha": self.alpha,
+                "K_um2_s_alpha": self.K_um2_s_alpha,
+                "photons": self.photons,
+            }
+        )
 
 
 class _SceneMotion:
@@ -197,8 +201,9 @@ class _SceneMotion:
             if isinstance(mot, FractionalMotion):
                 D, alpha, K = nan, np.full(n, mot.alpha), np.full(n, mot.K_um2_s_alpha)
             else:
-                D = np.broadcast_to(np.asarray(rec.diffusion_um2_s(d, mot, viscosity_mpa_s=self.viscosity), float),
-                                    (n,))
+                D = np.broadcast_to(
+                    np.asarray(rec.diffusion_um2_s(d, mot, viscosity_mpa_s=self.viscosity), float), (n,)
+                )
                 alpha, K = (np.ones(n), D) if mot.model == "brownian" else (nan, nan)
             photons = pop.photons * (d / pop.diameter_nm) ** pop.brightness_exponent
             self.ids[mine] = len(p.population) + np.arange(n)
@@ -240,7 +245,7 @@ class _SceneMotion:
             scale = math.sqrt(2 * mot.K_um2_s_alpha * grid_s**mot.alpha)
             for axis in range(self.n_dims):
                 for start in range(0, rows.size, 64):
-                    batch = rows[start:start + 64]
+                    batch = rows[start : start + 64]
                     incr = fgn_increments(batch.size, n_steps, hurst=mot.alpha / 2, rng=self.rng)
                     self.fbm_incr[batch, :, axis] = scale * incr
 
@@ -248,13 +253,15 @@ class _SceneMotion:
     def step(self) -> np.ndarray:
         """Advance one frame; return sub-step positions of every slot, shape (n_slots, n_sub, 3), µm."""
         n, m = self.pop.size, self.n_sub
-        incr = self.rng.standard_normal((n, m + 1, 3)) * np.sqrt(2 * self.D[:, None, None] * self.step_s[None, :, None])
+        incr = self.rng.standard_normal((n, m + 1, 3)) * np.sqrt(
+            2 * self.D[:, None, None] * self.step_s[None, :, None]
+        )
         if self.n_dims == 2:
             incr[:, :, 2] = 0.0
         cum = np.cumsum(incr, axis=1)
         if self.fbm_slots.size:
             q = self.fbm_q
-            chunk = self.fbm_incr[:, self.frame * q:(self.frame + 1) * q]
+            chunk = self.fbm_incr[:, self.frame * q : (self.frame + 1) * q]
             cum0 = np.concatenate([np.zeros((self.fbm_slots.size, 1, 3)), np.cumsum(chunk, axis=1)], axis=1)
             cum[self.fbm_slots, :m] = cum0[:, self.fbm_sub_index]
             cum[self.fbm_slots, m] = cum0[:, q]
@@ -282,7 +289,7 @@ class _SceneMotion:
         if outside.any():
             pos = pos.copy()
             crossed = (pos < lo) | (pos >= lo + size)
-            crossed[:, self.n_dims:] = False
+            crossed[:, self.n_dims :] = False
             pos[:, axes] = lo[axes] + np.mod(pos[:, axes] - lo[axes], size[axes])
             # the newcomer enters at the opposite face, anywhere on it: redraw the coordinates along the face
             slots = np.flatnonzero(outside)
@@ -320,20 +327,31 @@ class _SceneRun:
             photons = mot.photons.copy()
             sub = mot.step()
             mean = sub.mean(axis=1)
-            inside = (mean[:, 0] >= -0.5 * ps) & (mean[:, 0] <= x_max) & (mean[:, 1] >= -0.5 * ps) & (
-                mean[:, 1] <= y_max)
+            inside = (
+                (mean[:, 0] >= -0.5 * ps)
+                & (mean[:, 0] <= x_max)
+                & (mean[:, 1] >= -0.5 * ps)
+                & (mean[:, 1] <= y_max)
+            )
             self.rows.append((ids[inside], np.full(inside.sum(), k), mean[inside]))
             if not render:
                 yield None
                 continue
             expected = emitter_image(
-                sub[..., 0] / ps, sub[..., 1] / ps, photons, frame_shape=shape, psf_sigma_px=sigma_px,
-                z_um=sub[..., 2] if focal is not None else None, focal_depth_um=focal,
+                sub[..., 0] / ps,
+                sub[..., 1] / ps,
+                photons,
+                frame_shape=shape,
+                psf_sigma_px=sigma_px,
+                z_um=sub[..., 2] if focal is not None else None,
+                focal_depth_um=focal,
                 background_photons=rec.camera.background_photons,
             )
             yield camera_counts(
-                expected, read_noise_electrons=rec.camera.read_noise_electrons,
-                gain_adu_per_electron=rec.camera.gain_adu_per_electron, offset_adu=rec.camera.offset_adu,
+                expected,
+                read_noise_electrons=rec.camera.read_noise_electrons,
+                gain_adu_per_electron=rec.camera.gain_adu_per_electron,
+                offset_adu=rec.camera.offset_adu,
                 rng=self.noise_rng,
             )
 
@@ -349,22 +367,24 @@ class _SceneRun:
         p = props.loc[ids]
         half_depth = 0.5 * rec.optics.focal_depth_um
         in_focus = np.abs(xyz[:, 2]) <= half_depth if rec.optics.n_dims == 3 else np.ones(ids.size, bool)
-        out = pd.DataFrame({
-            "particle": ids.astype(np.int64),
-            "frame": frame,
-            "time_s": frame * rec.frame_interval_s,
-            "x_um": xyz[:, 0],
-            "y_um": xyz[:, 1],
-            "z_um": xyz[:, 2],
-            "in_focus": in_focus,
-            "diameter_nm": p["diameter_nm"].to_numpy(),
-            "D_um2_s": p["D_um2_s"].to_numpy(),
-            "population": p["population"].to_numpy(),
-            "motion_model": p["motion_model"].to_numpy(),
-            "alpha": p["alpha"].to_numpy(),
-            "K_um2_s_alpha": p["K_um2_s_alpha"].to_numpy(),
-            "photons": p["photons"].to_numpy(),
-        })
+        out = pd.DataFrame(
+            {
+                "particle": ids.astype(np.int64),
+                "frame": frame,
+                "time_s": frame * rec.frame_interval_s,
+                "x_um": xyz[:, 0],
+                "y_um": xyz[:, 1],
+                "z_um": xyz[:, 2],
+                "in_focus": in_focus,
+                "diameter_nm": p["diameter_nm"].to_numpy(),
+                "D_um2_s": p["D_um2_s"].to_numpy(),
+                "population": p["population"].to_numpy(),
+                "motion_model": p["motion_model"].to_numpy(),
+                "alpha": p["alpha"].to_numpy(),
+                "K_um2_s_alpha": p["K_um2_s_alpha"].to_numpy(),
+                "photons": p["photons"].to_numpy(),
+            }
+        )
         return out.sort_values(["particle", "frame"], kind="stable").reset_index(drop=True)
 
     def metadata(self, truth: pd.DataFrame) -> dict[str, Any]:
@@ -528,8 +548,13 @@ def write_scene(recipe: SceneRecipe | str | Path, output_dir: str | Path, *, rng
     movie = out / f"{rec.name}.ome.tif"
     with _atomic_path(movie) as tmp:
         tifffile.imwrite(
-            tmp, run.frames(), shape=(rec.n_frames, rec.height_px, rec.width_px), dtype=np.uint16, ome=True,
-            photometric="minisblack", metadata=_ome_metadata(rec),
+            tmp,
+            run.frames(),
+            shape=(rec.n_frames, rec.height_px, rec.width_px),
+            dtype=np.uint16,
+            ome=True,
+            photometric="minisblack",
+            metadata=_ome_metadata(rec),
         )
     truth = run.truth()
     meta = run.metadata(truth)
@@ -539,7 +564,9 @@ def write_scene(recipe: SceneRecipe | str | Path, output_dir: str | Path, *, rng
     return [movie, table, summary]
 
 
-def simulate_from_recipe(recipe_path: str | Path, output_dir: str | Path, *, seed: int | None = None) -> list[Path]:
+def simulate_from_recipe(
+    recipe_path: str | Path, output_dir: str | Path, *, seed: int | None = None
+) -> list[Path]:
     """Entry point of ``msdkit simulate``: load a recipe, optionally override its seed, write the files.
 
     Raises
