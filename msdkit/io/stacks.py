@@ -14,6 +14,7 @@ from __future__ import annotations
 import logging
 import math
 import re
+import struct
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -74,13 +75,16 @@ _DAMAGE_SIGNS = (
 )
 
 
-def _convert(value: Any, unit: str | None, table: dict[str, float], default_unit: str) -> float | None:
+def _convert(
+    value: Any, unit: str | None, table: dict[str, float], default_unit: str, *, allow_zero: bool = False
+) -> float | None:
+    """Convert a metadata value to µm or s; None when missing, unparsable, in an unknown unit or not > 0."""
     try:
         v = float(value)
     except (TypeError, ValueError):
         return None
     factor = table.get((unit or default_unit).strip(), table.get((unit or default_unit).strip().lower()))
-    if factor is None or not math.isfinite(v) or v <= 0:
+    if factor is None or not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
         return None
     return v * factor
 
@@ -134,7 +138,7 @@ def _ome_metadata(xml: str, channel: int) -> dict[str, Any]:
     planes = [el.attrib for el in pixels if _local(el.tag) == "Plane"]
     mine = [p for p in planes if int(p.get("TheC", 0)) == channel and int(p.get("TheZ", 0)) == 0] or planes
     times = sorted(
-        (int(p.get("TheT", 0)), _convert(p.get("DeltaT"), p.get("DeltaTUnit"), _TIME_S, "s"))
+        (int(p.get("TheT", 0)), _convert(p.get("DeltaT"), p.get("DeltaTUnit"), _TIME_S, "s", allow_zero=True))
         for p in mine
         if p.get("DeltaT") is not None
     )
@@ -256,7 +260,8 @@ class _TiffSource:
         declared = self._declared_planes()
         found = int(np.prod(lead_shape)) if lead_shape else 1
         if damage or (declared is not None and declared > found * n_samples):
-            detail = "; ".join(dict.fromkeys(damage)) or f"metadata declares {declared} planes, found {found}"
+            detail = "; ".join(dict.fromkeys(re.sub(r"<[^>]*>\s*", "", m) for m in damage))
+            detail = detail or f"its metadata declares {declared} image planes, {found} were found"
             raise InputError(
                 expected_got(
                     f"{name}",
@@ -341,6 +346,16 @@ class _TiffSource:
                 )
             )
         offsets, counts = last.dataoffsets, last.databytecounts
+        ifd_end = self._ifd_end(last)
+        if ifd_end is not None and ifd_end > size:
+            raise InputError(
+                expected_got(
+                    f"{name}",
+                    "a complete TIFF file",
+                    f"a truncated file ({size} bytes; its last frame directory ends at byte {ifd_end})",
+                    "Copy the file again from its source; a transfer or recording may have been cut short.",
+                )
+            )
         if offsets and counts and offsets[-1] + counts[-1] > size:
             raise InputError(
                 expected_got(
@@ -351,6 +366,21 @@ class _TiffSource:
                 )
             )
         self.kind, self.metadata = self._metadata(c)
+
+    def _ifd_end(self, page) -> int | None:
+        """Byte just past the image file directory of a page (None for pages computed from metadata)."""
+        tif = self.tif
+        offset = getattr(page, "offset", None)
+        if not offset:
+            return None
+        fmt = tif.tiff
+        fh = tif.filehandle
+        fh.seek(offset)
+        raw = fh.read(fmt.tagnosize)
+        if len(raw) < fmt.tagnosize:
+            return offset + fmt.tagnosize
+        (n_tags,) = struct.unpack(fmt.tagnoformat, raw)
+        return offset + fmt.tagnosize + n_tags * fmt.tagsize + fmt.offsetsize
 
     def _declared_planes(self) -> int | None:
         tif = self.tif
