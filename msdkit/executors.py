@@ -38,6 +38,8 @@ FramesCallback = Callable[[str, int, int], None]
 CrashResult = Callable[[Any, str], Any]
 
 _POLL_S = 0.2
+#: Seconds to wait for an outside Dask scheduler to answer before giving up.
+DASK_CONNECT_TIMEOUT_S = 20.0
 _WORKER_QUEUE = None  # set in local worker processes by _init_worker
 _WORKER_SEND_EVERY_S = 0.5
 
@@ -252,10 +254,10 @@ class DaskExecutor:
     kind = "dask"
 
     def __init__(self, address: str | None = None, n_workers: int | None = None,
-                 connect_timeout_s: float = 20.0) -> None:
+                 connect_timeout_s: float | None = None) -> None:
         self.address = address
         self.n_workers = n_workers
-        self.connect_timeout_s = connect_timeout_s
+        self.connect_timeout_s = DASK_CONNECT_TIMEOUT_S if connect_timeout_s is None else connect_timeout_s
         self.client = None
         self._cluster = None
 
@@ -280,7 +282,7 @@ class DaskExecutor:
             self.n_workers = self.n_workers or default_n_workers()
             self._cluster = distributed.LocalCluster(
                 n_workers=self.n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                dashboard_address=None,
+                scheduler_port=0, dashboard_address="127.0.0.1:0",  # free ports: never clash with another cluster
             )
             self.client = distributed.Client(self._cluster, set_as_default=False)
         return self
@@ -308,7 +310,7 @@ class DaskExecutor:
             fut = self.client.submit(fn, task, None, key=f"msdkit-{token}-{i}", pure=False)
             futures[fut.key] = (fut, task)
         try:
-            for fut in distributed.as_completed([f for f, _ in futures.values()]):
+            for fut in distributed.as_completed([f for f, _ in futures.values()], loop=self.client.loop):
                 _, task = futures.pop(fut.key)
                 try:
                     result = fut.result()
