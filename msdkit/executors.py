@@ -282,7 +282,8 @@ class DaskExecutor:
             self.n_workers = self.n_workers or default_n_workers()
             self._cluster = distributed.LocalCluster(
                 n_workers=self.n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                scheduler_port=0, dashboard_address="127.0.0.1:0",  # free ports: never clash with another cluster
+                # free ports on loopback: never clash with another cluster on this machine
+                scheduler_port=0, dashboard_address="127.0.0.1:0",
             )
             self.client = distributed.Client(self._cluster, set_as_default=False)
         return self

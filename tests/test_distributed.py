@@ -2,15 +2,15 @@
 
 from __future__ import annotations
 
+import batch_fakes
 import numpy as np
 import pandas as pd
 import pytest
 import tifffile
+from test_batch import _comparable, make_cfg, make_inputs
 
-import batch_fakes
 from msdkit.batch import run_batch
 from msdkit.errors import ConfigError
-from test_batch import _comparable, make_cfg, make_inputs
 
 distributed = pytest.importorskip("distributed")
 
