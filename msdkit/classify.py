@@ -186,7 +186,33 @@ class _Fits:
     positions: list = field(repr=False)
 
 
+_FIT_CACHE: dict = {}
+
+
+def _fingerprint(tracks: pd.DataFrame, *extra) -> str:
+    import hashlib
+
+    h = hashlib.blake2b(digest_size=16)
+    for c in ("track", "frame", "x_um", "y_um", "z_um"):
+        if c in tracks.columns:
+            h.update(np.ascontiguousarray(tracks[c].to_numpy()).tobytes())
+    h.update(repr(extra).encode())
+    return h.hexdigest()
+
+
 def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
+    """Fit all models to all tracks (the last two results are kept, so sample_motion reuses classify's fits)."""
+    key = _fingerprint(tracks, float(frame_interval_s), float(exposure_s), int(min_points))
+    if key in _FIT_CACHE:
+        return _FIT_CACHE[key]
+    fits = _fit_all_uncached(tracks, frame_interval_s, exposure_s, min_points)
+    while len(_FIT_CACHE) >= 2:
+        _FIT_CACHE.pop(next(iter(_FIT_CACHE)))
+    _FIT_CACHE[key] = fits
+    return fits
+
+
+def _fit_all_uncached(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
     arr = _track_arrays(tracks)
     T = arr.ids.size
     dt = float(frame_interval_s)
@@ -382,3 +408,343 @@ def classify_tracks(
     })
     assert set(out["motion_class"]) <= set(MOTION_CLASSES)
     return out
+
+
+# ------------------------------------------------------------------------------------------ sample level
+@dataclass(frozen=True)
+class SampleMotion:
+    """Motion verdict of a sample: ensemble alpha, ergodicity, heterogeneity, class fractions and flags.
+
+    Attributes
+    ----------
+    alpha, alpha_ci95 : ensemble anomalous exponent (localisation-noise and blur corrected: every track's
+        noise level is fitted with it) from the pooled step likelihood of the tracks, and its 95 % interval
+        (bootstrap over tracks, widened to the profile-likelihood interval when that is wider).
+    n_tracks : tracks in the table; n_tracks_used : tracks that entered alpha (not immobile, long enough).
+    class_counts, class_fractions : per-track motion classes.
+    msd_comparison : DataFrame ``lag_frames, lag_s, ta_msd_um2, ea_msd_um2, n_tracks`` (time-averaged MSD
+        averaged over tracks, and ensemble-averaged MSD from each track's first position).
+    alpha_ta, alpha_ea : log-log slopes of the two over the same lags; alpha_ea_minus_ta_ci95 its interval.
+    ergodicity_breaking, ergodicity_breaking_brownian : EB = Var/mean² over tracks of the time-averaged MSD at
+        ``eb_lag_frames``, and its value expected for Brownian motion with the sample's D, noise and track
+        lengths (Qian's ratio generalised to localisation noise).
+    non_gaussian, non_gaussian_se : non-Gaussian parameter of the pooled one-frame displacements (0 for
+        Gaussian), and the same after scaling each track by its own mean square (``non_gaussian_within``).
+    heterogeneity_ratio, heterogeneity_p, amplitude_spread : Cochran's Q/(n−1) of per-track log amplitudes
+        (D or K at the ensemble alpha) against their finite-track errors, its p-value, and the estimated
+        intrinsic SD of log amplitude (≈ relative spread of D).
+    drift_um_s, drift_corrected : from the drift estimate.
+    flags : plain words (see :func:`sample_motion`); numbers : the number behind each flag.
+    """
+
+    alpha: float
+    alpha_ci95: tuple[float, float]
+    n_tracks: int
+    n_tracks_used: int
+    class_counts: dict
+    class_fractions: dict
+    msd_comparison: pd.DataFrame = field(repr=False)
+    alpha_ta: float
+    alpha_ea: float
+    alpha_ea_minus_ta_ci95: tuple[float, float]
+    ergodicity_breaking: float
+    ergodicity_breaking_brownian: float
+    non_gaussian: float
+    non_gaussian_se: float
+    non_gaussian_within: float
+    heterogeneity_ratio: float
+    heterogeneity_p: float
+    amplitude_spread: float
+    drift_um_s: tuple
+    drift_corrected: bool
+    flags: tuple
+    numbers: dict
+
+    def to_dict(self) -> dict:
+        """Plain JSON-ready dictionary (the MSD comparison table as lists)."""
+        out = {k: getattr(self, k) for k in self.__dataclass_fields__ if k != "msd_comparison"}
+        out["msd_comparison"] = {c: self.msd_comparison[c].tolist() for c in self.msd_comparison.columns}
+        out["flags"] = list(self.flags)
+        out["alpha_ci95"] = list(self.alpha_ci95)
+        out["alpha_ea_minus_ta_ci95"] = list(self.alpha_ea_minus_ta_ci95)
+        out["drift_um_s"] = list(self.drift_um_s)
+        return out
+
+
+def _refine_max(y: np.ndarray, grid: np.ndarray):
+    """Argmax with parabolic refinement on a uniform grid, per row of y (B, G)."""
+    y = np.atleast_2d(y)
+    B, G = y.shape
+    i = np.argmax(y, axis=1)
+    r = np.arange(B)
+    inner = (i >= 1) & (i <= G - 2)
+    y0 = y[r, np.clip(i - 1, 0, G - 1)]
+    y1 = y[r, i]
+    y2 = y[r, np.clip(i + 1, 0, G - 1)]
+    den = y0 - 2 * y1 + y2
+    off = np.where(inner & (den < 0), np.clip(0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), -1, 1), 0.0)
+    return grid[i] + off * (grid[1] - grid[0])
+
+
+def _pooled_alpha(profiles: np.ndarray, rng: np.random.Generator, n_boot: int):
+    """Ensemble alpha from summed per-track profiles; bootstrap and profile-likelihood 95 % intervals."""
+    from .motion_models import _interval
+
+    total = profiles.sum(axis=0)
+    a_hat = float(_refine_max(total[None, :], ALPHA_GRID)[0])
+    lo_p, hi_p = _interval(total[None, :], np.array([total.max() - 1.920729]))
+    n = profiles.shape[0]
+    if n >= 2 and n_boot > 0:
+        wts = rng.multinomial(n, np.full(n, 1.0 / n), size=n_boot).astype(float)
+        boot = _refine_max(wts @ profiles, ALPHA_GRID)
+        lo_b, hi_b = np.quantile(boot, [0.025, 0.975])
+    else:
+        lo_b, hi_b = lo_p[0], hi_p[0]
+    return a_hat, (float(min(lo_b, lo_p[0])), float(max(hi_b, hi_p[0])))
+
+
+def _heterogeneity(log_a: np.ndarray, se: np.ndarray):
+    """Cochran's Q of per-track log amplitudes, its p-value and the DerSimonian–Laird between-track SD."""
+    n = log_a.size
+    if n < 3:
+        return np.nan, np.nan, np.nan
+    w = 1.0 / se**2
+    mean = np.sum(w * log_a) / w.sum()
+    Q = float(np.sum(w * (log_a - mean) ** 2))
+    p = float(stats.chi2.sf(Q, n - 1))
+    tau2 = max(0.0, (Q - (n - 1)) / (w.sum() - np.sum(w**2) / w.sum()))
+    return Q / (n - 1), p, float(np.sqrt(tau2))
+
+
+def _loglog_slope(lags: np.ndarray, y: np.ndarray) -> float:
+    ok = (y > 0) & np.isfinite(y)
+    if ok.sum() < 2:
+        return np.nan
+    return float(np.polyfit(np.log(lags[ok]), np.log(y[ok]), 1)[0])
+
+
+def sample_motion(
+    tracks: pd.DataFrame,
+    track_classes: pd.DataFrame,
+    sample_fit=None,
+    drift=None,
+    *,
+    frame_interval_s: float,
+    exposure_s: float | None = None,
+    track_fits: pd.DataFrame | None = None,
+    drift_corrected: bool | None = None,
+    min_points: int = 10,
+    min_tracks: int = 20,
+    min_class_fraction: float = 0.25,
+    eb_lag_frames: int = 1,
+    n_boot: int = 400,
+    rng=0,
+) -> SampleMotion:
+    """Sample-level motion: ensemble alpha with its interval, ergodicity, heterogeneity and flags.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        The tracks the classes were computed on (drift already removed when it was), µm.
+    track_classes : DataFrame
+        Output of :func:`classify_tracks` (``track, motion_class`` are used).
+    sample_fit : SampleFit, optional
+        From :func:`msdkit.fit.fit_sample`; its alpha is reported beside the pooled one in ``numbers``.
+    drift : DriftEstimate, optional
+        From :func:`msdkit.drift.estimate_drift`; sets the ``drift`` flag.
+    frame_interval_s, exposure_s : float, s
+    drift_corrected : bool, optional
+        Whether ``tracks`` had the drift removed; default: the drift's ``safe_to_subtract``.
+    min_tracks : int, default=20
+        Fewer usable tracks give the ``few_tracks`` flag.
+    min_class_fraction : float, default=0.25
+        Fraction of tracks of one class (confined, directed) above which the sample is flagged with it,
+        provided it is also significantly above the 5 % a class gets by chance (binomial test, p < 0.001).
+    eb_lag_frames : int, default=1
+        Lag of the ergodicity-breaking parameter.
+    n_boot : int, default=400
+        Bootstrap replicates over tracks.
+    rng : int, Generator or None
+
+    Returns
+    -------
+    SampleMotion
+
+    Notes
+    -----
+    Flags (plain words), each with its number in ``numbers``:
+
+    * ``subdiffusive``: the upper end of the 95 % interval of the ensemble alpha is below 1
+      (``alpha_ci95_hi``); ``superdiffusive``: its lower end is above 1 (``alpha_ci95_lo``).
+    * ``confined`` / ``directed``: at least ``min_class_fraction`` of the classified tracks are confined /
+      directed and that fraction is significantly above 5 % (``fraction_confined``, ``fraction_directed``).
+    * ``heterogeneous``: per-track amplitudes (D, or K at the ensemble alpha) spread more than their finite-
+      track errors explain (Cochran's Q test p < 0.001) by at least 25 % intrinsic SD on the log scale
+      (``amplitude_spread``).
+    * ``nonergodic``: the log-log slopes of the ensemble-averaged and the time-averaged MSD differ: the
+      95 % bootstrap interval of the difference excludes 0 and the difference exceeds 0.15 in size
+      (``alpha_ea_minus_ta``) (Metzler et al. 2014).
+    * ``drift``: a significant common drift (``drift_speed_um_s``, ``drift_p_value``).
+    * ``few_tracks``: fewer than ``min_tracks`` usable tracks (``n_tracks_used``).
+
+    References
+    ----------
+    R. Metzler, J.-H. Jeon, A. G. Cherstvy & E. Barkai, Phys. Chem. Chem. Phys. 16, 24128 (2014).
+    H. Qian, M. P. Sheetz & E. L. Elson, Biophys. J. 60, 910 (1991).
+    R. DerSimonian & N. Laird, Control. Clin. Trials 7, 177 (1986) (between-track spread).
+    A. Rahman, Phys. Rev. 136, A405 (1964) (non-Gaussian parameter).
+    """
+    from .motion_models import amplitude_at_alpha, brownian_msd_um2, ta_msd_relative_variance
+
+    exposure = _check_tracks(tracks, frame_interval_s, exposure_s)
+    if not isinstance(track_classes, pd.DataFrame) or not {"track", "motion_class"} <= set(track_classes.columns):
+        raise InputError(expected_got("track_classes", "the DataFrame returned by classify_tracks",
+                                      type(track_classes).__name__, "Call classify_tracks first."))
+    g = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
+    dt = float(frame_interval_s)
+    e = exposure / dt
+    fits = _fit_all(tracks, dt, exposure, min_points)
+    cls = track_classes.set_index("track")["motion_class"].reindex(fits.ids).fillna("undetermined").to_numpy()
+    use = fits.usable & (cls != "immobile")
+    n_used = int(use.sum())
+
+    # ensemble alpha from the pooled profile likelihood
+    if n_used >= 1:
+        alpha, alpha_ci = _pooled_alpha(fits.alpha_profile[use], g, n_boot)
+    else:
+        alpha, alpha_ci = np.nan, (np.nan, np.nan)
+
+    # class fractions
+    counts = {c: int(np.sum(cls == c)) for c in MOTION_CLASSES}
+    n_cls = max(1, sum(v for k, v in counts.items() if k != "undetermined"))
+    fractions = {c: counts[c] / n_cls for c in MOTION_CLASSES if c != "undetermined"}
+    fractions["undetermined"] = counts["undetermined"] / max(1, len(cls))
+
+    # heterogeneity of per-track amplitudes at the ensemble alpha
+    het_ratio = het_p = spread = np.nan
+    if n_used >= 3 and np.isfinite(alpha):
+        span = np.array([p.shape[0] for p in fits.positions])
+        la, se = np.zeros(fits.ids.size), np.ones(fits.ids.size)
+        for n_pts in np.unique(span[use]):
+            idx = np.flatnonzero(use & (span == n_pts))
+            steps = np.stack([np.diff(fits.positions[i], axis=0) for i in idx])
+            la[idx], se[idx] = amplitude_at_alpha(steps, exposure_ratio=e, alpha=alpha)
+        het_ratio, het_p, spread = _heterogeneity(la[use], se[use])
+
+    # time-averaged vs ensemble-averaged MSD, ergodicity breaking, non-Gaussian parameter
+    pos = [fits.positions[i] for i in np.flatnonzero(use)]
+    lengths = np.array([p.shape[0] for p in pos], dtype=int)
+    n_max = int(max(1, min(50, np.median(lengths) // 4))) if pos else 1
+    lags = np.arange(1, n_max + 1)
+    ta = np.full((len(pos), n_max), np.nan)
+    ea = np.full((len(pos), n_max), np.nan)
+    for i, p in enumerate(pos):
+        for j, n in enumerate(lags):
+            if p.shape[0] > n:
+                d = p[n:] - p[:-n]
+                ta[i, j] = np.mean(np.sum(d * d, axis=1))
+                ea[i, j] = float(np.sum((p[n] - p[0]) ** 2))
+    with np.errstate(invalid="ignore"):
+        ta_mean = np.nanmean(ta, axis=0) if len(pos) else np.full(n_max, np.nan)
+        ea_mean = np.nanmean(ea, axis=0) if len(pos) else np.full(n_max, np.nan)
+    cmp = pd.DataFrame({"lag_frames": lags.astype(np.int64), "lag_s": lags * dt, "ta_msd_um2": ta_mean,
+                        "ea_msd_um2": ea_mean, "n_tracks": np.sum(np.isfinite(ta), axis=0).astype(np.int64)})
+    a_ta = _loglog_slope(lags, ta_mean)
+    a_ea = _loglog_slope(lags, ea_mean)
+    diff_ci = (np.nan, np.nan)
+    if len(pos) >= 3 and n_max >= 2 and n_boot > 0:
+        diffs = []
+        for _ in range(min(n_boot, 200)):
+            b = g.integers(0, len(pos), len(pos))
+            with np.errstate(invalid="ignore"):
+                diffs.append(_loglog_slope(lags, np.nanmean(ea[b], 0)) - _loglog_slope(lags, np.nanmean(ta[b], 0)))
+        diffs = np.asarray(diffs)
+        diffs = diffs[np.isfinite(diffs)]
+        if diffs.size:
+            diff_ci = tuple(float(v) for v in np.quantile(diffs, [0.025, 0.975]))
+
+    k_eb = int(max(1, eb_lag_frames))
+    eb = eb_exp = np.nan
+    ok_eb = lengths > k_eb + 1
+    if ok_eb.sum() >= 3:
+        col = ta[ok_eb, k_eb - 1] if k_eb <= n_max else np.array(
+            [np.mean(np.sum((p[k_eb:] - p[:-k_eb]) ** 2, axis=1)) for p in np.array(pos, dtype=object)[ok_eb]])
+        eb = float(np.var(col) / np.mean(col) ** 2)
+        D_bar = float(np.nanmedian(fits.D_um2_s[use]))
+        s2 = float(np.nanmedian(fits.sigma_um[use] ** 2))
+        qs = []
+        for L in lengths[ok_eb]:
+            t = np.arange(L) * dt
+            M = brownian_msd_um2(t, D_um2_s=max(D_bar, 1e-12), sigma_um=np.sqrt(s2), exposure_s=exposure,
+                                 n_dims=1)
+            qs.append(ta_msd_relative_variance(M, k_eb, L - 1, fits.n_axes))
+        eb_exp = float(np.mean(qs))
+
+    ng = ng_se = ng_within = np.nan
+    if pos:
+        steps = [np.diff(p, axis=0) for p in pos]
+        r2 = [np.sum(s * s, axis=1) for s in steps]
+        nd = fits.n_axes
+        k = 1.0 + 2.0 / nd
+
+        def _ng(parts):
+            allr = np.concatenate(parts)
+            m2 = allr.mean()
+            return float(np.mean(allr**2) / (k * m2 * m2) - 1.0) if m2 > 0 else np.nan
+
+        ng = _ng(r2)
+        ng_within = _ng([r / r.mean() for r in r2 if r.mean() > 0])
+        if len(r2) >= 3 and n_boot > 0:
+            bs = [_ng([r2[j] for j in g.integers(0, len(r2), len(r2))]) for _ in range(min(n_boot, 200))]
+            ng_se = float(np.nanstd(bs))
+
+    # flags
+    flags: list[str] = []
+    numbers: dict[str, float] = {
+        "alpha": float(alpha), "alpha_ci95_lo": float(alpha_ci[0]), "alpha_ci95_hi": float(alpha_ci[1]),
+        "n_tracks_used": n_used,
+    }
+    if np.isfinite(alpha_ci[1]) and alpha_ci[1] < 1.0:
+        flags.append("subdiffusive")
+    if np.isfinite(alpha_ci[0]) and alpha_ci[0] > 1.0:
+        flags.append("superdiffusive")
+    n_classified = sum(counts[c] for c in MOTION_CLASSES if c != "undetermined")
+    for c in ("confined", "directed"):
+        numbers[f"fraction_{c}"] = float(fractions[c])
+        p_binom = float(stats.binom.sf(counts[c] - 1, n_classified, 0.05)) if n_classified else 1.0
+        numbers[f"fraction_{c}_p"] = p_binom
+        if n_classified and fractions[c] >= min_class_fraction and p_binom < 1e-3:
+            flags.append(c)
+    numbers["heterogeneity_ratio"] = float(het_ratio)
+    numbers["heterogeneity_p"] = float(het_p)
+    numbers["amplitude_spread"] = float(spread)
+    if np.isfinite(het_p) and het_p < 1e-3 and spread >= 0.25:
+        flags.append("heterogeneous")
+    d_ea = a_ea - a_ta if np.isfinite(a_ea) and np.isfinite(a_ta) else np.nan
+    numbers["alpha_ea_minus_ta"] = float(d_ea)
+    numbers["ergodicity_breaking"] = float(eb)
+    numbers["ergodicity_breaking_brownian"] = float(eb_exp)
+    if np.isfinite(d_ea) and np.isfinite(diff_ci[0]) and (diff_ci[0] > 0 or diff_ci[1] < 0) and abs(d_ea) > 0.15:
+        flags.append("nonergodic")
+    drift_v = tuple(float(v) for v in drift.velocity_um_s) if drift is not None else (0.0, 0.0)
+    corrected = bool(drift.safe_to_subtract) if (drift is not None and drift_corrected is None) else bool(
+        drift_corrected)
+    if drift is not None:
+        numbers["drift_speed_um_s"] = float(np.hypot.reduce(np.asarray(drift_v)))
+        numbers["drift_p_value"] = float(drift.p_value)
+        if drift.significant:
+            flags.append("drift")
+    if n_used < min_tracks:
+        flags.append("few_tracks")
+    numbers["non_gaussian"] = float(ng)
+    if sample_fit is not None:
+        numbers["alpha_msd_fit"] = float(getattr(sample_fit, "alpha", np.nan))
+    return SampleMotion(
+        alpha=float(alpha), alpha_ci95=(float(alpha_ci[0]), float(alpha_ci[1])), n_tracks=int(fits.ids.size),
+        n_tracks_used=n_used, class_counts=counts, class_fractions=fractions, msd_comparison=cmp,
+        alpha_ta=float(a_ta), alpha_ea=float(a_ea), alpha_ea_minus_ta_ci95=diff_ci,
+        ergodicity_breaking=float(eb), ergodicity_breaking_brownian=float(eb_exp), non_gaussian=float(ng),
+        non_gaussian_se=float(ng_se), non_gaussian_within=float(ng_within), heterogeneity_ratio=float(het_ratio),
+        heterogeneity_p=float(het_p), amplitude_spread=float(spread), drift_um_s=drift_v,
+        drift_corrected=corrected, flags=tuple(flags), numbers=numbers,
+    )

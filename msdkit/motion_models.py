@@ -249,7 +249,7 @@ class _Bank:
     taper: np.ndarray  # (N,)
 
 
-@lru_cache(maxsize=96)
+@lru_cache(maxsize=512)
 def _bank(n_steps: int, exposure_ratio: float) -> _Bank:
     N = int(n_steps)
     e = float(exposure_ratio)
@@ -452,3 +452,57 @@ def _interval(prof: np.ndarray, level: np.ndarray):
     hi = np.where(right_below < A, cross(np.clip(right_below, 0, A - 1), np.clip(right_below - 1, 0, A - 1)),
                   g[-1])
     return lo, hi
+
+
+def amplitude_at_alpha(steps: np.ndarray, *, exposure_ratio: float, alpha: float):
+    """Per-track amplitude of a power-law model with fixed alpha, and its standard error on the log scale.
+
+    The amplitude A (per-axis MSD at one frame, 2 K Δt^α) is fitted with each track's own noise variance B;
+    the SE of log A is from the expected Whittle information of (log A, B), i.e. with the noise fitted too.
+
+    Returns
+    -------
+    log_A : ndarray (n_tracks,)
+    se_log_A : ndarray (n_tracks,)
+    """
+    T, N, n_axes = steps.shape
+    e = round(float(exposure_ratio), 4)
+    bank = _bank(N, e)
+    P = periodograms(steps, bank.taper)
+    w = bank.weights
+    W = w.sum()
+    shape = expected_periodogram(_blurred_power(np.arange(N + 1, dtype=float), float(alpha), e), bank.taper)
+    ll, _ = _loglik_grid(P, w, shape[None, :], bank.noise, n_axes)
+    _, logr, _ = _profile_noise(ll[:, 0, :])
+    r = np.where(np.isfinite(logr), 10.0**logr, 0.0)
+    spec = np.maximum(shape[None, :] + r[:, None] * bank.noise[None, :], 1e-300)  # (T, F)
+    A = np.maximum(np.sum(w[None, :] * P / spec, axis=1) / (n_axes * W), 1e-300)
+    S = A[:, None] * spec
+    g1 = A[:, None] * shape[None, :] / S  # ∂ log S / ∂ log A
+    g2 = bank.noise[None, :] / S  # ∂ log S / ∂ B
+    F11 = n_axes * np.sum(w * g1 * g1, axis=1)
+    F12 = n_axes * np.sum(w * g1 * g2, axis=1)
+    F22 = n_axes * np.sum(w * g2 * g2, axis=1)
+    det = F11 * F22 - F12**2
+    var = np.where((r > 0) & (det > 0), F22 / np.where(det > 0, det, 1.0), 1.0 / F11)
+    var = var * N * np.sum(bank.taper**4)  # variance inflation of a tapered periodogram
+    return np.log(A), np.sqrt(var)
+
+
+def ta_msd_relative_variance(msd_axis: np.ndarray, lag: int, n_steps: int, n_axes: int = 2) -> float:
+    """Var/mean² of one track's time-averaged MSD at ``lag`` for a Gaussian process with stationary steps.
+
+    ``msd_axis`` holds the per-axis MSD M(0..n_steps) of the observed positions (noise included). The
+    time average over K = n_steps − lag + 1 windows has per-axis variance (2/K²) Σ_{j,l} c(j−l)² with
+    c(m) = ½[M(|m|+n) + M(|m−n|) − 2M(|m|)]; axes are independent. For pure 2D Brownian motion this is
+    Qian's ratio (4n²K + 2K + n − n³)/(6nK²) for n ≤ K (Qian, Sheetz & Elson 1991).
+    """
+    M = np.asarray(msd_axis, dtype=float)
+    n = int(lag)
+    K = int(n_steps) - n + 1
+    if K < 1 or n < 1:
+        return np.nan
+    m = np.arange(K)
+    c = 0.5 * (M[np.abs(m) + n] + M[np.abs(m - n)] - 2.0 * M[m])
+    var_axis = 2.0 / K**2 * (K * c[0] ** 2 + 2.0 * np.sum((K - m[1:]) * c[1:] ** 2))
+    return float(var_axis / (n_axes * M[n] ** 2))
