@@ -83,12 +83,12 @@ def test_auto_step_size_recovers_the_step_sd(seed):
     assert not settings.limited_by_spacing
 
 
-def test_largest_step_is_capped_at_half_the_spot_spacing():
+def test_largest_step_is_capped_at_the_spot_spacing():
     rng = np.random.default_rng(8)
-    spots = true_spots(rng, n_side=10, spacing=12.0, n_frames=30, D_px2=2.0)
+    spots = true_spots(rng, n_side=10, spacing=12.0, n_frames=30, D_px2=4.0)  # 5 step SDs = 14 px
     _, settings = link.link_spots(spots)
     assert settings.limited_by_spacing
-    assert settings.max_step_px == pytest.approx(0.5 * settings.spot_spacing_px)
+    assert settings.max_step_px == pytest.approx(settings.spot_spacing_px)
     assert settings.spot_spacing_px < 12.5
 
 
