@@ -267,9 +267,10 @@ def _fit_windows(
         if idx.size == 0:
             break
         jw = jac[idx] * wts[idx, :, None]
-        hess = np.einsum("npi,npj->nij", jw, jac[idx])
-        grad = np.einsum("npi,np->ni", jw, data[idx] - model[idx])
-        diag = np.einsum("nii->ni", hess)
+        jwt = jw.transpose(0, 2, 1)
+        hess = jwt @ jac[idx]
+        grad = (jwt @ (data[idx] - model[idx])[..., None])[..., 0]
+        diag = np.diagonal(hess, axis1=1, axis2=2)
         a = hess + lam[idx, None, None] * diag[:, :, None] * eye
         try:
             step = np.linalg.solve(a, grad[..., None])[..., 0]
@@ -295,8 +296,7 @@ def _fit_windows(
         rel = np.abs(step[:, 0:2]).max(axis=1)
         done = (better & (rel < 1e-4)) | (lam[idx] > 1e6)
         active[idx[done]] = False
-    jw = jac * wts[:, :, None]
-    hess = np.einsum("npi,npj->nij", jw, jac)
+    hess = (jac * wts[:, :, None]).transpose(0, 2, 1) @ jac
     ok = np.isfinite(p).all(axis=1) & (p[:, 2] > 0)
     cov = np.full((n, _N_PARAMS, _N_PARAMS), np.nan)
     det = np.linalg.det(hess)
@@ -369,6 +369,16 @@ def _mass_noise_sd(noise_sd: float, sigma_px: float) -> float:
 def _fit_candidates(frame, cand: _Frame, *, sigma_px, noise_sd, shot_factor, h):
     windows, valid = _cut_windows(frame, cand.rows, cand.cols, h)
     p0 = _initial_guess(windows, valid, cand.background, sigma_px, h)
+    return _fit_prepared(windows, valid, p0, noise_sd=noise_sd, shot_factor=shot_factor, h=h)
+
+
+def _fit_batch(windows, valid, background, *, sigma_px, noise_sd, shot_factor, h):
+    p0 = _initial_guess(windows, valid, background, sigma_px, h)
+    p, c, _, ok, _, _ = _fit_prepared(windows, valid, p0, noise_sd=noise_sd, shot_factor=shot_factor, h=h)
+    return p, c, ok
+
+
+def _fit_prepared(windows, valid, p0, *, noise_sd, shot_factor, h):
     out_p = np.empty_like(p0)
     out_c = np.empty((len(p0), _N_PARAMS, _N_PARAMS))
     out_ok = np.empty(len(p0), dtype=bool)
@@ -717,36 +727,52 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
     first_frame = int(first_frame)
     s = settings
     h = s.window_half_width_px
-    parts = []
+    # candidates frame by frame, then one batch of fits for the whole chunk
+    cands, wins, vals, frame_of = [], [], [], []
     for i, f in enumerate(arr):
         cand = _candidates(f, sigma_px=s.spot_sigma_px, noise_sd=s.noise_sd, bg_scale=s.background_scale_px,
                            level_mass=s.min_mass)
         if len(cand.rows) == 0:
             continue
-        p, cov, model, ok, _, _ = _fit_candidates(f, cand, sigma_px=s.spot_sigma_px, noise_sd=s.noise_sd,
-                                                  shot_factor=s.shot_noise_factor, h=h)
+        w, v = _cut_windows(f, cand.rows, cand.cols, h)
+        cands.append(cand)
+        wins.append(w)
+        vals.append(v)
+        frame_of.append(np.full(len(cand.rows), i))
+    parts = []
+    if cands:
+        rows = np.concatenate([c.rows for c in cands])
+        cols = np.concatenate([c.cols for c in cands])
+        mass = np.concatenate([c.mass for c in cands])
+        bgr = np.concatenate([c.background for c in cands])
+        fidx = np.concatenate(frame_of)
+        windows, valid = np.concatenate(wins), np.concatenate(vals)
+        p, cov, ok = _fit_batch(windows, valid, bgr, sigma_px=s.spot_sigma_px, noise_sd=s.noise_sd,
+                                shot_factor=s.shot_noise_factor, h=h)
         with np.errstate(invalid="ignore"):
             prec = np.sqrt(0.5 * (cov[:, 0, 0] + cov[:, 1, 1]))
         keep = ok & (np.abs(p[:, 0]) <= 1.5) & (np.abs(p[:, 1]) <= 1.5)  # stayed on its own maximum
         keep &= (p[:, 4] <= s.max_sigma_px) & (prec <= s.max_precision_px)
-        keep &= ~_duplicates(cand.cols + p[:, 0], cand.rows + p[:, 1], cand.mass, keep, s.spot_sigma_px)
-        if not keep.any():
-            continue
-        pk = p[keep]
-        peak = pk[:, 2] * (special.erf(0.5 / (_SQRT2 * pk[:, 4])) ** 2)  # centre pixel of a centred spot
-        parts.append(pd.DataFrame({
-            "frame": np.full(int(keep.sum()), first_frame + i, dtype=np.int64),
-            "x_px": cand.cols[keep] + pk[:, 0],
-            "y_px": cand.rows[keep] + pk[:, 1],
-            "mass": cand.mass[keep],
-            "signal": peak,
-            "size_px": _SQRT2 * pk[:, 4],
-            "precision_px": prec[keep],
-            "sigma_px": pk[:, 4],
-            "background": pk[:, 3],
-            "total_mass": pk[:, 2],
-            "snr": cand.mass[keep] / s.mass_noise_sd,
-        }))
+        x, y = cols + p[:, 0], rows + p[:, 1]
+        for i in np.unique(fidx):
+            sel = fidx == i
+            keep[sel] &= ~_duplicates(x[sel], y[sel], mass[sel], keep[sel], s.spot_sigma_px)
+        if keep.any():
+            pk = p[keep]
+            peak = pk[:, 2] * (special.erf(0.5 / (_SQRT2 * pk[:, 4])) ** 2)  # centre pixel of a centred spot
+            parts.append(pd.DataFrame({
+                "frame": (first_frame + fidx[keep]).astype(np.int64),
+                "x_px": x[keep],
+                "y_px": y[keep],
+                "mass": mass[keep],
+                "signal": peak,
+                "size_px": _SQRT2 * pk[:, 4],
+                "precision_px": prec[keep],
+                "sigma_px": pk[:, 4],
+                "background": pk[:, 3],
+                "total_mass": pk[:, 2],
+                "snr": mass[keep] / s.mass_noise_sd,
+            }))
     if not parts:
         out = schema.empty_frame(schema.SPOT_COLUMNS)
         for c in ("sigma_px", "background", "total_mass", "snr"):
