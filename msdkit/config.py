@@ -179,8 +179,11 @@ class DetectionConfig(BaseModel):
     """Spot finding. Every setting is 'auto' (None) unless given."""
 
     model_config = _STRICT
-    spot_diameter_px: Annotated[int, Field(ge=3, le=99)] | None = None
-    min_mass: Annotated[float, Field(ge=0)] | None = None
+    spot_diameter_px: Annotated[float, Field(gt=1, le=99)] | None = None  # FWHM of an in-focus spot
+    min_mass: Annotated[float, Field(ge=0)] | None = None  # camera counts (matched-filter brightness)
+    false_spots_per_frame: Annotated[float, Field(gt=0, le=100)] = 0.01  # target for the auto min_mass
+    max_precision_px: Annotated[float, Field(gt=0)] | None = None  # auto: half the spot SD
+    max_sigma_px: Annotated[float, Field(gt=0)] | None = None  # auto: 2.5 x the spot SD (far out of focus)
     chunk_frames: Annotated[int, Field(ge=1)] = 200
 
 

@@ -488,7 +488,10 @@ def choose_detection_settings(
     if not (false_spots_per_frame > 0):
         raise InputError(expected_got("false_spots_per_frame", "> 0", false_spots_per_frame,
                                       "Give the tolerated expected number of noise spots per frame, e.g. 0.01."))
-    for name, val in (("spot_diameter_px", spot_diameter_px), ("min_mass", min_mass),
+    if min_mass is not None and not (np.isfinite(min_mass) and min_mass >= 0):
+        raise InputError(expected_got("min_mass", "a number >= 0 or None (automatic)", min_mass,
+                                      "Remove detection.min_mass from the config to choose it automatically."))
+    for name, val in (("spot_diameter_px", spot_diameter_px),
                       ("max_precision_px", max_precision_px), ("max_sigma_px", max_sigma_px)):
         if val is not None and not (np.isfinite(val) and val > 0):
             raise InputError(expected_got(name, "a positive number or None (automatic)", val,
