@@ -133,7 +133,7 @@ def analyze_tracks(
 
     drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)
     corrected = False
-    if drift_correction and drift_est.safe_to_subtract:
+    if drift_correction and drift_est.worth_subtracting:
         tracks = drift.remove_drift(tracks, drift_est)
         corrected = True
 
