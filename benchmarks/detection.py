@@ -31,24 +31,42 @@ from msdkit.simulate.scene import render_scene
 
 
 def recipe(seed: int, n_frames: int, size: int, count: float):
-    return recipe_from_dict({
-        "name": f"bench_beads_{seed}",
-        "seed": seed,
-        "width_px": size,
-        "height_px": size,
-        "pixel_size_um": 0.166,
-        "n_frames": n_frames,
-        "frame_interval_s": 1.0 / 30.0,
-        "exposure_s": 0.015,
-        "temperature_c": 25.0,
-        "medium": "water",
-        "optics": {"n_dims": 3, "wavelength_nm": 520, "numerical_aperture": 0.8, "focal_depth_um": 1.0,
-                   "slab_um": 4.0},
-        "camera": {"background_photons": 20, "read_noise_electrons": 1.5, "gain_adu_per_electron": 1.0,
-                   "offset_adu": 100},
-        "populations": [{"label": "beads_100nm", "count_in_view": count, "diameter_nm": 100, "photons": 3000,
-                         "motion": "brownian"}],
-    })
+    return recipe_from_dict(
+        {
+            "name": f"bench_beads_{seed}",
+            "seed": seed,
+            "width_px": size,
+            "height_px": size,
+            "pixel_size_um": 0.166,
+            "n_frames": n_frames,
+            "frame_interval_s": 1.0 / 30.0,
+            "exposure_s": 0.015,
+            "temperature_c": 25.0,
+            "medium": "water",
+            "optics": {
+                "n_dims": 3,
+                "wavelength_nm": 520,
+                "numerical_aperture": 0.8,
+                "focal_depth_um": 1.0,
+                "slab_um": 4.0,
+            },
+            "camera": {
+                "background_photons": 20,
+                "read_noise_electrons": 1.5,
+                "gain_adu_per_electron": 1.0,
+                "offset_adu": 100,
+            },
+            "populations": [
+                {
+                    "label": "beads_100nm",
+                    "count_in_view": count,
+                    "diameter_nm": 100,
+                    "photons": 3000,
+                    "motion": "brownian",
+                }
+            ],
+        }
+    )
 
 
 def covariance_D(x: np.ndarray, frames: np.ndarray, track: np.ndarray, dt: float) -> tuple[float, np.ndarray]:
@@ -67,7 +85,9 @@ def covariance_D(x: np.ndarray, frames: np.ndarray, track: np.ndarray, dt: float
     t_step = track[:-1]
     t_pair = track[:-2]
     per = pd.DataFrame({"sq": np.bincount(t_step[ok], sq[ok]), "n_sq": np.bincount(t_step[ok]) * n_dims})
-    pp = pd.DataFrame({"pr": np.bincount(t_pair[pair], prod[pair]), "n_pr": np.bincount(t_pair[pair]) * n_dims})
+    pp = pd.DataFrame(
+        {"pr": np.bincount(t_pair[pair], prod[pair]), "n_pr": np.bincount(t_pair[pair]) * n_dims}
+    )
     per = per.join(pp, how="outer").fillna(0.0)
     D = per["sq"].sum() / per["n_sq"].sum() / (2 * dt) + per["pr"].sum() / per["n_pr"].sum() / dt
     return float(D), per.to_numpy()
@@ -109,14 +129,22 @@ def run_one(seed: int, n_frames: int, size: int, count: float, rng) -> dict:
     frames, truth, meta = render_scene(rec)
     t_render = time.perf_counter() - t0
     px, dt = rec.pixel_size_um, rec.frame_interval_s
-    D_true = float(meta["populations"][0]["D_um2_s"]) if "D_um2_s" in meta["populations"][0] else float(
-        truth["D_um2_s"].median())
+    D_true = (
+        float(meta["populations"][0]["D_um2_s"])
+        if "D_um2_s" in meta["populations"][0]
+        else float(truth["D_um2_s"].median())
+    )
 
     t0 = time.perf_counter()
     idx = np.unique(np.linspace(0, len(frames) - 1, min(len(frames), 40)).astype(int))
     settings = detect.choose_detection_settings(frames[idx])
-    spots = pd.concat([detect.locate_spots(frames[a:a + 100], settings=settings, first_frame=a)
-                       for a in range(0, len(frames), 100)], ignore_index=True)
+    spots = pd.concat(
+        [
+            detect.locate_spots(frames[a : a + 100], settings=settings, first_frame=a)
+            for a in range(0, len(frames), 100)
+        ],
+        ignore_index=True,
+    )
     t_detect = time.perf_counter() - t0
     t0 = time.perf_counter()
     tracks, lset = link.link_spots(spots, frame_interval_s=dt)
@@ -130,15 +158,18 @@ def run_one(seed: int, n_frames: int, size: int, count: float, rng) -> dict:
     infocus = truth["in_focus"].to_numpy()
     n_infocus = int(infocus.sum())
     found_infocus = int(infocus[spot_row[matched]].sum())
-    err = spots[["x_px", "y_px"]].to_numpy()[matched] - np.column_stack([tx[spot_row[matched]],
-                                                                           ty[spot_row[matched]]])
+    err = spots[["x_px", "y_px"]].to_numpy()[matched] - np.column_stack(
+        [tx[spot_row[matched]], ty[spot_row[matched]]]
+    )
     err_in = err[infocus[spot_row[matched]]]
     # a true particle is "crowded" in a frame when another true particle is within 3 px: one spot may then show
     # both, and which of the two it is cannot be told
     crowded = np.zeros(len(truth), dtype=bool)
     for _, rows in truth.groupby("frame").indices.items():
         if len(rows) > 1:
-            d, _ = cKDTree(np.column_stack([tx[rows], ty[rows]])).query(np.column_stack([tx[rows], ty[rows]]), k=2)
+            d, _ = cKDTree(np.column_stack([tx[rows], ty[rows]])).query(
+                np.column_stack([tx[rows], ty[rows]]), k=2
+            )
             crowded[rows] = d[:, 1] < 3.0
 
     # linking errors: consecutive points of a track that are different true particles, counted over links
@@ -161,12 +192,18 @@ def run_one(seed: int, n_frames: int, size: int, count: float, rng) -> dict:
     true_xy = np.column_stack([tx[trow[okrow]], ty[trow[okrow]]]) * px
     D_truepos, _ = covariance_D(true_xy, fr[okrow], tr[okrow], dt)
     # the simulation's own scatter: every true position of every particle
-    D_all_truth, _ = covariance_D(truth[["x_um", "y_um"]].to_numpy(), truth["frame"].to_numpy(),
-                                  truth["particle"].to_numpy(), dt)
+    D_all_truth, _ = covariance_D(
+        truth[["x_um", "y_um"]].to_numpy(), truth["frame"].to_numpy(), truth["particle"].to_numpy(), dt
+    )
     # perfect linking of the detected spots: spots joined by their true particle, same length filter
-    o = pd.DataFrame({"track": truth["particle"].to_numpy()[spot_row[matched]],
-                      "frame": spots["frame"].to_numpy()[matched],
-                      "x": spots["x_px"].to_numpy()[matched] * px, "y": spots["y_px"].to_numpy()[matched] * px})
+    o = pd.DataFrame(
+        {
+            "track": truth["particle"].to_numpy()[spot_row[matched]],
+            "frame": spots["frame"].to_numpy()[matched],
+            "x": spots["x_px"].to_numpy()[matched] * px,
+            "y": spots["y_px"].to_numpy()[matched] * px,
+        }
+    )
     o = o[o.groupby("track")["frame"].transform("size") >= lset.min_track_points]
     D_oracle, _ = covariance_D(o[["x", "y"]].to_numpy(), o["frame"].to_numpy(), o["track"].to_numpy(), dt)
     return {
@@ -213,30 +250,44 @@ def main() -> None:
     for k in range(a.movies):
         r = run_one(a.seed + k, a.frames, a.size, a.count, rng)
         rows.append(r)
-        print(f"movie seed {r['seed']}: {r['frames']} frames {r['size']}x{r['size']} px, "
-              f"spot SD {r['spot_sigma_px']:.2f} px, threshold {r['min_snr']:.1f} SD, "
-              f"{r['spots_per_frame']:.1f} spots/frame")
-        print(f"  detection: recall (in focus) {r['recall_in_focus']:.3f}, precision {r['precision']:.3f}; "
-              f"localisation RMS error {r['loc_rms_in_focus_nm']:.1f} nm in focus, {r['loc_rms_all_nm']:.1f} nm "
-              f"all (median precision estimate {r['median_precision_nm']:.1f} nm)")
-        print(f"  linking: max step {r['max_step_px']:.1f} px (step SD {r['step_sd_px']:.2f} px"
-              f"{', limited by spacing' if r['limited_by_spacing'] else ''}), {r['n_tracks']} tracks, "
-              f"{100 * r['fraction_linked']:.1f} % of spots linked, wrong-join rate "
-              f"{100 * r['link_error_rate']:.2f} % (of {r['n_links_checked']} links between uncrowded particles)")
-        print(f"  D: {r['D_est']:.3f} um2/s (95 % CI {r['D_ci95'][0]:.3f}-{r['D_ci95'][1]:.3f}) vs truth "
-              f"{r['D_true']:.3f} -> {100 * (r['D_est'] / r['D_true'] - 1):+.2f} %; same points at true positions "
-              f"{r['D_true_positions']:.3f} ({100 * (r['D_true_positions'] / r['D_true'] - 1):+.2f} %)")
-        print(f"     references: every true position of the simulation {r['D_all_truth']:.3f} "
-              f"({100 * (r['D_all_truth'] / r['D_true'] - 1):+.2f} %), detected spots linked perfectly "
-              f"{r['D_oracle']:.3f} ({100 * (r['D_oracle'] / r['D_true'] - 1):+.2f} %)")
-        print(f"  time: render {r['t_render_s']:.1f} s, detect {r['t_detect_s']:.1f} s "
-              f"({1e3 * r['t_detect_s'] / r['frames']:.1f} ms/frame), link {r['t_link_s']:.1f} s")
+        print(
+            f"movie seed {r['seed']}: {r['frames']} frames {r['size']}x{r['size']} px, "
+            f"spot SD {r['spot_sigma_px']:.2f} px, threshold {r['min_snr']:.1f} SD, "
+            f"{r['spots_per_frame']:.1f} spots/frame"
+        )
+        print(
+            f"  detection: recall (in focus) {r['recall_in_focus']:.3f}, precision {r['precision']:.3f}; "
+            f"localisation RMS error {r['loc_rms_in_focus_nm']:.1f} nm in focus, {r['loc_rms_all_nm']:.1f} nm "
+            f"all (median precision estimate {r['median_precision_nm']:.1f} nm)"
+        )
+        print(
+            f"  linking: max step {r['max_step_px']:.1f} px (step SD {r['step_sd_px']:.2f} px"
+            f"{', limited by spacing' if r['limited_by_spacing'] else ''}), {r['n_tracks']} tracks, "
+            f"{100 * r['fraction_linked']:.1f} % of spots linked, wrong-join rate "
+            f"{100 * r['link_error_rate']:.2f} % (of {r['n_links_checked']} links between uncrowded particles)"
+        )
+        print(
+            f"  D: {r['D_est']:.3f} um2/s (95 % CI {r['D_ci95'][0]:.3f}-{r['D_ci95'][1]:.3f}) vs truth "
+            f"{r['D_true']:.3f} -> {100 * (r['D_est'] / r['D_true'] - 1):+.2f} %; same points at true positions "
+            f"{r['D_true_positions']:.3f} ({100 * (r['D_true_positions'] / r['D_true'] - 1):+.2f} %)"
+        )
+        print(
+            f"     references: every true position of the simulation {r['D_all_truth']:.3f} "
+            f"({100 * (r['D_all_truth'] / r['D_true'] - 1):+.2f} %), detected spots linked perfectly "
+            f"{r['D_oracle']:.3f} ({100 * (r['D_oracle'] / r['D_true'] - 1):+.2f} %)"
+        )
+        print(
+            f"  time: render {r['t_render_s']:.1f} s, detect {r['t_detect_s']:.1f} s "
+            f"({1e3 * r['t_detect_s'] / r['frames']:.1f} ms/frame), link {r['t_link_s']:.1f} s"
+        )
     d = np.array([r["D_est"] / r["D_true"] - 1 for r in rows])
-    print(f"\nover {len(rows)} movies: D error mean {100 * d.mean():+.2f} %, max |error| "
-          f"{100 * np.abs(d).max():.2f} %; wrong-join rate mean "
-          f"{100 * np.mean([r['link_error_rate'] for r in rows]):.3f} %; recall "
-          f"{np.mean([r['recall_in_focus'] for r in rows]):.3f}, precision "
-          f"{np.mean([r['precision'] for r in rows]):.3f}")
+    print(
+        f"\nover {len(rows)} movies: D error mean {100 * d.mean():+.2f} %, max |error| "
+        f"{100 * np.abs(d).max():.2f} %; wrong-join rate mean "
+        f"{100 * np.mean([r['link_error_rate'] for r in rows]):.3f} %; recall "
+        f"{np.mean([r['recall_in_focus'] for r in rows]):.3f}, precision "
+        f"{np.mean([r['precision'] for r in rows]):.3f}"
+    )
 
 
 if __name__ == "__main__":

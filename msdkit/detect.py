@@ -7,7 +7,8 @@ How a frame is processed (:func:`locate_spots`)
 
 1. A smooth background map is estimated (bright pixels clipped, block-averaged, Gaussian-smoothed).
 2. The background-subtracted frame is correlated with the spot's own profile (a pixel-integrated Gaussian of
-   width ``spot_sigma_px``: the matched filter). At every pixel this gives the least-squares brightness of a spot
+   width ``spot_sigma_px``: the matched filter). At every pixel this gives the least-squares brightness of a
+   spot
    centred there, in camera counts, with a known noise SD.
 3. Local maxima whose brightness reaches ``min_mass`` are candidates.
 4. Each candidate is refined by a weighted Levenberg–Marquardt fit of a pixel-integrated Gaussian with free
@@ -16,7 +17,8 @@ How a frame is processed (:func:`locate_spots`)
 5. Spots that are badly localised (``precision_px > max_precision_px``) or far wider than an in-focus spot
    (``sigma_px > max_sigma_px``, i.e. far out of focus) are dropped.
 
-:func:`choose_detection_settings` finds every setting from a sample of the movie: the spot width from fits to the
+:func:`choose_detection_settings` finds every setting from a sample of the movie: the spot width from fits to
+the
 brightest spots, the noise from robust statistics of the background, the shot-noise factor from the fit
 residuals, and the brightness threshold from the expected number of noise maxima above it (Gaussian random
 field theory), checked against the noise maxima of the negated movie and corrected for skewed (Poisson) noise.
@@ -103,7 +105,7 @@ class DetectionSettings:
     chosen_automatically: tuple[str, ...] = ()
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # input checks
 
 
@@ -112,23 +114,39 @@ def _as_frames(frames, name: str = "frames") -> np.ndarray:
     if arr.ndim == 2:
         arr = arr[None]
     if arr.ndim != 3:
-        raise InputError(expected_got(
-            f"{name}", "a 3-D array (frame, row, column) or a single 2-D frame", f"shape {arr.shape}",
-            "Pass a movie as a stack of 2-D grey-level frames (split colour channels first)."))
+        raise InputError(
+            expected_got(
+                f"{name}",
+                "a 3-D array (frame, row, column) or a single 2-D frame",
+                f"shape {arr.shape}",
+                "Pass a movie as a stack of 2-D grey-level frames (split colour channels first).",
+            )
+        )
     if arr.shape[1] < 5 or arr.shape[2] < 5:
-        raise InputError(expected_got(
-            f"{name} frame size", "at least 5 x 5 pixels", f"{arr.shape[1]} x {arr.shape[2]}",
-            "Check that the movie was read with the right axis order."))
+        raise InputError(
+            expected_got(
+                f"{name} frame size",
+                "at least 5 x 5 pixels",
+                f"{arr.shape[1]} x {arr.shape[2]}",
+                "Check that the movie was read with the right axis order.",
+            )
+        )
     if not (np.issubdtype(arr.dtype, np.integer) or np.issubdtype(arr.dtype, np.floating)):
         raise InputError(expected_got(f"{name} dtype", "integer or float", arr.dtype, "Convert the frames."))
     arr = arr.astype(np.float64, copy=False)
     if not np.all(np.isfinite(arr)):
-        raise InputError(expected_got(f"{name}", "finite numbers", "NaN or inf values",
-                                      "Replace missing pixels (e.g. by the frame median) before detection."))
+        raise InputError(
+            expected_got(
+                f"{name}",
+                "finite numbers",
+                "NaN or inf values",
+                "Replace missing pixels (e.g. by the frame median) before detection.",
+            )
+        )
     return arr
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # background, noise and the matched filter
 
 
@@ -190,7 +208,7 @@ def _local_maxima(img: np.ndarray, level: float, radius: int) -> tuple[np.ndarra
     return rows, cols
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # spot fitting
 
 
@@ -324,11 +342,11 @@ def _initial_guess(windows, valid, background, sigma_px, h):
     resid = np.where(valid, windows - b0[:, None, None], 0.0)
     core = np.zeros((w, w), dtype=bool)
     r = max(1, int(round(2 * sigma_px)))
-    core[h - r:h + r + 1, h - r:h + r + 1] = True
+    core[h - r : h + r + 1, h - r : h + r + 1] = True
     m0 = np.maximum(resid[:, core].sum(axis=1), 1e-3)
     p0 = np.zeros((n, _N_PARAMS))
     # one centroid step over the 3 x 3 core gives a start within a fraction of a pixel
-    c3 = np.clip(resid[:, h - 1:h + 2, h - 1:h + 2], 0, None)
+    c3 = np.clip(resid[:, h - 1 : h + 2, h - 1 : h + 2], 0, None)
     tot = c3.sum(axis=(1, 2))
     tot = np.where(tot > 0, tot, 1.0)
     p0[:, 0] = (c3.sum(axis=1) * np.array([-1.0, 0.0, 1.0])).sum(axis=1) / tot
@@ -339,7 +357,7 @@ def _initial_guess(windows, valid, background, sigma_px, h):
     return p0
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # one frame
 
 
@@ -386,22 +404,23 @@ def _fit_prepared(windows, valid, p0, *, noise_sd, shot_factor, h):
     step = max(1, 200_000 // (2 * h + 1) ** 2)  # bound the memory of one batch of Jacobians
     for i in range(0, len(p0), step):
         sl = slice(i, i + step)
-        p, c, m, ok = _fit_windows(windows[sl], valid[sl], p0[sl], noise_var=noise_sd**2,
-                                   shot_factor=shot_factor, half_width=h)
+        p, c, m, ok = _fit_windows(
+            windows[sl], valid[sl], p0[sl], noise_var=noise_sd**2, shot_factor=shot_factor, half_width=h
+        )
         out_p[sl], out_c[sl], out_m[sl], out_ok[sl] = p, c, m, ok
     return out_p, out_c, out_m, out_ok, windows, valid
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # threshold from Gaussian random field theory
 
 
 def _expected_noise_maxima(u: float, *, sigma_px: float, shape: tuple[int, int]) -> float:
-    """Expected number of noise maxima above u SDs in one frame (Euler characteristic of the excursion set).
+    """Return the expected number of noise maxima above u SDs in one frame (Euler characteristic).
 
     Gaussian white noise filtered by a Gaussian of variance s^2 = sigma^2 + 1/12 (the pixel-integrated kernel)
-    has gradient variance lambda = 1 / (2 s^2) per axis; the expected Euler characteristic of the set above u in
-    a rectangle of area A and half-perimeter P is (1 - Phi(u)) + P sqrt(lambda) e^{-u^2/2} / (2 pi)
+    has gradient variance lambda = 1 / (2 s^2) per axis; the expected Euler characteristic of the set above u
+    in     a rectangle of area A and half-perimeter P is (1 - Phi(u)) + P sqrt(lambda) e^{-u^2/2} / (2 pi)
     + A lambda u e^{-u^2/2} / (2 pi)^{3/2} (Adler 1981, The Geometry of Random Fields; Worsley et al. 1996,
     Hum. Brain Mapp. 4:58, doi:10.1002/(SICI)1097-0193(1996)4:1<58::AID-HBM4>3.0.CO;2-O).
     """
@@ -409,12 +428,16 @@ def _expected_noise_maxima(u: float, *, sigma_px: float, shape: tuple[int, int])
     area = float(shape[0] * shape[1])
     half_perimeter = float(shape[0] + shape[1])
     e = math.exp(-0.5 * u * u)
-    return (float(special.ndtr(-u)) + half_perimeter * math.sqrt(lam) * e / (2 * math.pi)
-            + area * lam * u * e / (2 * math.pi) ** 1.5)
+    return (
+        float(special.ndtr(-u))
+        + half_perimeter * math.sqrt(lam) * e / (2 * math.pi)
+        + area * lam * u * e / (2 * math.pi) ** 1.5
+    )
 
 
 def _threshold_snr(target: float, *, sigma_px: float, shape, calibration: float) -> float:
     """Smallest u with calibration * expected maxima above u <= target (Gaussian noise)."""
+
     def f(u: float) -> float:
         n = calibration * _expected_noise_maxima(u, sigma_px=sigma_px, shape=shape)
         return math.log(max(n, 1e-300)) - math.log(target)
@@ -431,7 +454,7 @@ def _kernel_skew_factor(sigma_px: float) -> float:
     return float(np.sum(k**3) ** 2 / np.sum(k**2) ** 3)
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # public API
 
 
@@ -460,10 +483,12 @@ def choose_detection_settings(
         Target for the automatic ``min_mass``: expected number of noise maxima per frame taken for spots.
     max_precision_px : float, px, optional
         Spots with a larger estimated localisation SD are dropped. Default: half the spot SD (an in-focus spot
-        at the threshold is localised to about a quarter of its SD, so this drops only spots far out of focus or
+        at the threshold is localised to about a quarter of its SD, so this drops only spots far out of focus
+        or
         blurred beyond use).
     max_sigma_px : float, px, optional
-        Spots whose fitted Gaussian SD exceeds this are dropped (far out of focus). Default: 2.5 x the spot SD.
+        Spots whose fitted Gaussian SD exceeds this are dropped (far out of focus). Default: 2.5 x the spot
+        SD.
 
     Returns
     -------
@@ -471,31 +496,53 @@ def choose_detection_settings(
 
     Notes
     -----
-    Noise: pixel SD of the background-subtracted frames by iterative 3-SD clipping; its skewness from the pixels
+    Noise: pixel SD of the background-subtracted frames by iterative 3-SD clipping; its skewness from the
+    pixels
     away from any candidate. The matched-filter brightness of pure noise has SD
     ``noise_sd / sqrt(sum p_i^2)`` (p the spot profile), so the threshold is a number of SDs ``u`` solved from
     the expected number of noise maxima above ``u`` per frame (Gaussian random-field theory, see
     ``_expected_noise_maxima``). That count is calibrated against the maxima actually found in the negated
-    sample frames at a low level (3 SD), which corrects for correlated camera noise, and ``u`` is then shifted by
-    the Cornish–Fisher term ``gamma (u^2 - 1) / 6`` for the skewness ``gamma`` of the filtered noise (Poisson
-    noise has a heavier upper tail than the negated frames show; Cornish & Fisher 1938, Rev. Inst. Int. Stat.
-    5:307, doi:10.2307/1400905).
+    sample frames at a low level (3 SD), which corrects for correlated camera noise, and ``u`` is then shifted
+    by the Cornish–Fisher term ``gamma (u^2 - 1) / 6`` for the skewness ``gamma`` of the filtered noise
+    (Poisson noise has a heavier upper tail than the negated frames show; Cornish & Fisher 1938, Rev. Inst.
+    Int. Stat. 5:307, doi:10.2307/1400905).
 
     The shot-noise factor is the slope of the squared fit residuals against the fitted signal, over the pixels
     of the brightest spots.
     """
     frames = _as_frames(frames_sample, "frames_sample")
     if not (false_spots_per_frame > 0):
-        raise InputError(expected_got("false_spots_per_frame", "> 0", false_spots_per_frame,
-                                      "Give the tolerated expected number of noise spots per frame, e.g. 0.01."))
+        raise InputError(
+            expected_got(
+                "false_spots_per_frame",
+                "> 0",
+                false_spots_per_frame,
+                "Give the tolerated expected number of noise spots per frame, e.g. 0.01.",
+            )
+        )
     if min_mass is not None and not (np.isfinite(min_mass) and min_mass >= 0):
-        raise InputError(expected_got("min_mass", "a number >= 0 or None (automatic)", min_mass,
-                                      "Remove detection.min_mass from the config to choose it automatically."))
-    for name, val in (("spot_diameter_px", spot_diameter_px),
-                      ("max_precision_px", max_precision_px), ("max_sigma_px", max_sigma_px)):
+        raise InputError(
+            expected_got(
+                "min_mass",
+                "a number >= 0 or None (automatic)",
+                min_mass,
+                "Remove detection.min_mass from the config to choose it automatically.",
+            )
+        )
+    for name, val in (
+        ("spot_diameter_px", spot_diameter_px),
+        ("max_precision_px", max_precision_px),
+        ("max_sigma_px", max_sigma_px),
+    ):
         if val is not None and not (np.isfinite(val) and val > 0):
-            raise InputError(expected_got(name, "a positive number or None (automatic)", val,
-                                          f"Remove detection.{name} from the config to choose it automatically."))
+            raise InputError(
+                expected_got(
+                    name,
+                    "a positive number or None (automatic)",
+                    val,
+                    f"Remove detection.{name} from the config to choose it automatically.",
+                )
+            )
     shape = frames.shape[1:]
     auto: list[str] = []
 
@@ -540,8 +587,19 @@ def choose_detection_settings(
     if min_mass is None:
         auto.append("min_mass")
         u0 = 3.0
-        n_obs = sum(len(_candidates(f, sigma_px=sigma, noise_sd=noise_sd, bg_scale=bg_scale,
-                                    level_mass=u0 * mass_sd, invert=True).rows) for f in frames)
+        n_obs = sum(
+            len(
+                _candidates(
+                    f,
+                    sigma_px=sigma,
+                    noise_sd=noise_sd,
+                    bg_scale=bg_scale,
+                    level_mass=u0 * mass_sd,
+                    invert=True,
+                ).rows
+            )
+            for f in frames
+        )
         # the negated noise has skewness -gamma: its maxima above u0 behave like Gaussian maxima above u0_g
         u0_g = u0 + gamma * (u0 * u0 - 1.0) / 6.0
         n_exp = len(frames) * _expected_noise_maxima(u0_g, sigma_px=sigma, shape=shape)
@@ -593,8 +651,14 @@ def _pooled_noise(frames: np.ndarray, sigma: float) -> float:
         sds.append(_clipped_sd(rest if rest.size >= 100 else resid))
     sd = float(np.median(sds))
     if not sd > 0:
-        raise InputError(expected_got("frames_sample", "frames with some pixel noise", "constant frames",
-                                      "Check that the movie is not blank or saturated."))
+        raise InputError(
+            expected_got(
+                "frames_sample",
+                "frames with some pixel noise",
+                "constant frames",
+                "Check that the movie is not blank or saturated.",
+            )
+        )
     return sd
 
 
@@ -641,13 +705,16 @@ def _measure_bright_spots(frames, *, sigma, noise_sd, shot):
             iso = d.min(axis=1) > 2 * h
         else:
             iso = np.ones(1, dtype=bool)
-        edge = ((cand.rows >= h) & (cand.rows < f.shape[0] - h) & (cand.cols >= h) & (cand.cols < f.shape[1] - h))
+        edge = (
+            (cand.rows >= h) & (cand.rows < f.shape[0] - h) & (cand.cols >= h) & (cand.cols < f.shape[1] - h)
+        )
         keep = iso & edge
         if not keep.any():
             continue
         sub = _Frame(cand.rows[keep], cand.cols[keep], cand.mass[keep], cand.background[keep])
-        p, cov, model, ok, windows, valid = _fit_candidates(f, sub, sigma_px=sigma, noise_sd=noise_sd,
-                                                            shot_factor=shot, h=h)
+        p, cov, model, ok, windows, valid = _fit_candidates(
+            f, sub, sigma_px=sigma, noise_sd=noise_sd, shot_factor=shot, h=h
+        )
         ok &= (p[:, 4] > 0.31) & (p[:, 4] < 2.0 * h - 0.01)
         widths.append(p[ok, 4])
         if not ok.any():
@@ -710,9 +777,11 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
     DataFrame
         Columns of :data:`msdkit.schema.SPOT_COLUMNS`, then ``sigma_px`` (fitted Gaussian SD), ``background``
         (counts per pixel), ``total_mass`` (fitted integrated counts) and ``snr`` (``mass / mass_noise_sd``).
-        ``mass`` is the matched-filter brightness at the spot's brightest pixel (counts above background; equals
+        ``mass`` is the matched-filter brightness at the spot's brightest pixel (counts above background;
+        equals
         the integrated counts for an in-focus spot); ``signal`` the fitted peak pixel above background;
-        ``size_px`` the radius of gyration ``sqrt(2) * sigma_px``; ``precision_px`` the localisation SD per axis
+        ``size_px`` the radius of gyration ``sqrt(2) * sigma_px``; ``precision_px`` the localisation SD per
+        axis
         from the inverse Fisher information of the fit under the noise model (pixel variance
         ``noise_sd^2 + shot_noise_factor * signal``). For Poisson noise this is the Cramér–Rao bound of
         Mortensen et al. (2010), which the weighted fit attains. Positions follow the coordinate convention of
@@ -724,8 +793,14 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
     tracking and super-resolution microscopy, Nat. Methods 7:377, doi:10.1038/nmeth.1447.
     """
     if not isinstance(settings, DetectionSettings):
-        raise InputError(expected_got("settings", "a DetectionSettings", type(settings).__name__,
-                                      "Make it with choose_detection_settings(frames_sample)."))
+        raise InputError(
+            expected_got(
+                "settings",
+                "a DetectionSettings",
+                type(settings).__name__,
+                "Make it with choose_detection_settings(frames_sample).",
+            )
+        )
     arr = _as_frames(frames)
     first_frame = int(first_frame)
     s = settings
@@ -733,8 +808,13 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
     # candidates frame by frame, then one batch of fits for the whole chunk
     cands, wins, vals, frame_of = [], [], [], []
     for i, f in enumerate(arr):
-        cand = _candidates(f, sigma_px=s.spot_sigma_px, noise_sd=s.noise_sd, bg_scale=s.background_scale_px,
-                           level_mass=s.min_mass)
+        cand = _candidates(
+            f,
+            sigma_px=s.spot_sigma_px,
+            noise_sd=s.noise_sd,
+            bg_scale=s.background_scale_px,
+            level_mass=s.min_mass,
+        )
         if len(cand.rows) == 0:
             continue
         w, v = _cut_windows(f, cand.rows, cand.cols, h)
@@ -750,8 +830,15 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
         bgr = np.concatenate([c.background for c in cands])
         fidx = np.concatenate(frame_of)
         windows, valid = np.concatenate(wins), np.concatenate(vals)
-        p, cov, ok = _fit_batch(windows, valid, bgr, sigma_px=s.spot_sigma_px, noise_sd=s.noise_sd,
-                                shot_factor=s.shot_noise_factor, h=h)
+        p, cov, ok = _fit_batch(
+            windows,
+            valid,
+            bgr,
+            sigma_px=s.spot_sigma_px,
+            noise_sd=s.noise_sd,
+            shot_factor=s.shot_noise_factor,
+            h=h,
+        )
         with np.errstate(invalid="ignore"):
             prec = np.sqrt(0.5 * (cov[:, 0, 0] + cov[:, 1, 1]))
         keep = ok & (np.abs(p[:, 0]) <= 1.5) & (np.abs(p[:, 1]) <= 1.5)  # stayed on its own maximum
@@ -763,19 +850,23 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
         if keep.any():
             pk = p[keep]
             peak = pk[:, 2] * (special.erf(0.5 / (_SQRT2 * pk[:, 4])) ** 2)  # centre pixel of a centred spot
-            parts.append(pd.DataFrame({
-                "frame": (first_frame + fidx[keep]).astype(np.int64),
-                "x_px": x[keep],
-                "y_px": y[keep],
-                "mass": mass[keep],
-                "signal": peak,
-                "size_px": _SQRT2 * pk[:, 4],
-                "precision_px": prec[keep],
-                "sigma_px": pk[:, 4],
-                "background": pk[:, 3],
-                "total_mass": pk[:, 2],
-                "snr": mass[keep] / s.mass_noise_sd,
-            }))
+            parts.append(
+                pd.DataFrame(
+                    {
+                        "frame": (first_frame + fidx[keep]).astype(np.int64),
+                        "x_px": x[keep],
+                        "y_px": y[keep],
+                        "mass": mass[keep],
+                        "signal": peak,
+                        "size_px": _SQRT2 * pk[:, 4],
+                        "precision_px": prec[keep],
+                        "sigma_px": pk[:, 4],
+                        "background": pk[:, 3],
+                        "total_mass": pk[:, 2],
+                        "snr": mass[keep] / s.mass_noise_sd,
+                    }
+                )
+            )
     if not parts:
         out = schema.empty_frame(schema.SPOT_COLUMNS)
         for c in ("sigma_px", "background", "total_mass", "snr"):
@@ -793,7 +884,7 @@ def expected_localization_sd_px(
     method: str = "likelihood",
     excess_noise_factor: float = 1.0,
 ) -> float:
-    """Expected localisation SD per axis of a Gaussian spot on a pixel camera (Mortensen et al. 2010).
+    """Return the expected localisation SD per axis of a Gaussian spot on a pixel camera (Mortensen 2010).
 
     Parameters
     ----------
@@ -822,9 +913,14 @@ def expected_localization_sd_px(
     Mortensen, Churchman, Spudich & Flyvbjerg (2010), Nat. Methods 7:377, doi:10.1038/nmeth.1447.
     """
     if not (photons > 0 and psf_sigma_px > 0 and background_photons_per_px >= 0):
-        raise ValueError(expected_got("photons, psf_sigma_px, background_photons_per_px",
-                                      "> 0, > 0 and >= 0", (photons, psf_sigma_px, background_photons_per_px),
-                                      "Give the spot's photon count, width and background."))
+        raise ValueError(
+            expected_got(
+                "photons, psf_sigma_px, background_photons_per_px",
+                "> 0, > 0 and >= 0",
+                (photons, psf_sigma_px, background_photons_per_px),
+                "Give the spot's photon count, width and background.",
+            )
+        )
     sa2 = psf_sigma_px**2 + 1.0 / 12.0
     b2 = float(background_photons_per_px)
     if method == "least_squares":
@@ -839,6 +935,12 @@ def expected_localization_sd_px(
             integral = quad(lambda t: math.log(t) / (1.0 + t / tau) if t > 0 else 0.0, 0.0, 1.0, limit=200)[0]
         var = excess_noise_factor * sa2 / photons / (1.0 + integral)
     else:
-        raise ValueError(expected_got("method", "'likelihood' or 'least_squares'", repr(method),
-                                      "Choose one of the two estimators of the paper."))
+        raise ValueError(
+            expected_got(
+                "method",
+                "'likelihood' or 'least_squares'",
+                repr(method),
+                "Choose one of the two estimators of the paper.",
+            )
+        )
     return math.sqrt(var)

@@ -5,11 +5,12 @@ Coordinates follow the convention of :mod:`msdkit.schema` (x = column, y = row, 
 
 Steps of :func:`link_spots`
 
-1. **Step size from the data.** For every spot, the distance to the nearest spot of the next frame is either its
-   own displacement (a 2-D Gaussian step, per-axis SD ``step_sd_px``) or, if that is farther or the particle is
-   gone, the distance to an unrelated spot (spots scattered at the observed density). The per-axis step SD and
-   the fraction of spots with a partner are fitted by maximum likelihood to these distances; a constant drift
-   (the median displacement of the close pairs) is removed first and re-estimated.
+1. **Step size from the data.** For every spot, the distance to the nearest spot of the next frame is
+   either its own displacement (a 2-D Gaussian step, per-axis SD ``step_sd_px``) or, if that is farther or
+   the particle is gone, the distance to an unrelated spot (spots scattered at the observed density). The
+   per-axis step SD and the fraction of spots with a partner are fitted by maximum likelihood to these
+   distances; a constant drift (the median displacement of the close pairs) is removed first and
+   re-estimated.
 2. **Largest step** ``max_step_px = 5 * step_sd_px`` (a 2-D Gaussian step exceeds it with probability
    e^-12.5 = 4e-6; at 4 SD it would be 3e-4, a split every ~3000 steps), but at most the median distance
    between neighbouring spots in a frame: a longer "step" is more likely a neighbour than the particle itself.
@@ -17,10 +18,10 @@ Steps of :func:`link_spots`
    steps that D came out 35 % low, while wrong joins hardly fell (benchmarks/detection.py).
 3. **Frame-to-frame linking** with trackpy (minimum total squared displacement within each group of competing
    spots; the search shrinks for groups too large to solve), on drift-corrected positions.
-4. **Gap closing**: a track end and a track start ``g`` frames later (``2 <= g <= max_gap_frames + 1``) are joined
-   when their distance is below ``max_step_px * sqrt(g)``; conflicting candidates are resolved by a global
-   assignment that minimises the summed negative log-likelihood of the joins. Missing frames stay missing (no
-   positions are invented).
+4. **Gap closing**: a track end and a track start ``g`` frames later (``2 <= g <= max_gap_frames + 1``) are
+   joined when their distance is below ``max_step_px * sqrt(g)``; conflicting candidates are resolved by a
+   global assignment that minimises the summed negative log-likelihood of the joins. Missing frames stay
+   missing (no positions are invented).
 5. Tracks with fewer than ``min_track_points`` positions are dropped; track ids are 0, 1, 2, … in order of
    their first frame.
 """
@@ -61,7 +62,8 @@ class LinkSettings:
         Median distance from a spot to its nearest neighbour in the same frame (NaN when too few).
     limited_by_spacing : bool
         True when ``max_step_px`` had to be cut to the spot spacing: the longest steps are then lost (tracks
-        split) and D may be underestimated by a few per cent; lower the particle density or the frame interval.
+        split) and D may be underestimated by a few per cent; lower the particle density or the frame
+        interval.
     drift_px_per_frame : tuple of float
         Constant drift (x, y) removed before linking (positions in the output are not changed).
     max_gap_frames : int
@@ -95,12 +97,12 @@ class LinkSettings:
     n_gaps_closed: int
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # step size from nearest-neighbour distances
 
 
 def _frame_groups(frames: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Unique frames, the start index of each in the frame-sorted order, and that order."""
+    """Return the unique frames, the start index of each in the frame-sorted order, and that order."""
     order = np.argsort(frames, kind="stable")
     f_sorted = frames[order]
     uniq, starts = np.unique(f_sorted, return_index=True)
@@ -111,7 +113,7 @@ def _spacing(xy: np.ndarray, frames: np.ndarray) -> float:
     uniq, starts, order = _frame_groups(frames)
     d = []
     for i in range(len(uniq)):
-        idx = order[starts[i]:starts[i + 1]]
+        idx = order[starts[i] : starts[i + 1]]
         if idx.size >= 2:
             dist, _ = cKDTree(xy[idx]).query(xy[idx], k=2)
             d.append(dist[:, 1])
@@ -127,8 +129,8 @@ def _next_frame_neighbours(xy, frames, drift, max_pairs=50_000, rng=None):
     for i in range(len(uniq) - 1):
         if uniq[i + 1] != uniq[i] + 1:
             continue
-        a = order[starts[i]:starts[i + 1]]
-        b = order[starts[i + 1]:starts[i + 2]]
+        a = order[starts[i] : starts[i + 1]]
+        b = order[starts[i + 1] : starts[i + 2]]
         d, j = cKDTree(xy[b]).query(xy[a] + drift)
         dist.append(d)
         vec.append(xy[b][j] - xy[a])
@@ -160,8 +162,12 @@ def _fit_mixture(r: np.ndarray, rho: np.ndarray, sigma0: float) -> tuple[float, 
     best = None
     for f0 in (0.5, 0.9):
         for s0 in (0.5 * sigma0, sigma0, 2.0 * sigma0):
-            res = optimize.minimize(nll, [math.log(max(s0, 1e-3)), math.log(f0 / (1 - f0))], method="Nelder-Mead",
-                                    options={"xatol": 1e-4, "fatol": 1e-6, "maxiter": 2000})
+            res = optimize.minimize(
+                nll,
+                [math.log(max(s0, 1e-3)), math.log(f0 / (1 - f0))],
+                method="Nelder-Mead",
+                options={"xatol": 1e-4, "fatol": 1e-6, "maxiter": 2000},
+            )
             if best is None or res.fun < best.fun:
                 best = res
     return math.exp(best.x[0]), 1.0 / (1.0 + math.exp(-best.x[1]))
@@ -187,8 +193,9 @@ def estimate_step_sd_px(
     -----
     The nearest spot of the next frame is either the spot's own successor, displaced by a 2-D Gaussian step of
     per-axis SD s, or an unrelated spot of a uniform scatter of density rho (the observed spots per area), so
-    the distance r has survival S(r) = [1 - f (1 - e^{-r^2/2s^2})] e^{-pi rho r^2}, with f the fraction of spots
-    whose successor is detected. s and f are fitted by maximum likelihood. The drift is the median displacement
+    the distance r has survival S(r) = [1 - f (1 - e^{-r^2/2s^2})] e^{-pi rho r^2}, with f the fraction of
+    spots whose successor is detected. s and f are fitted by maximum likelihood. The drift is the median
+    displacement
     of pairs closer than 3 s, and the fit is repeated on drift-corrected positions.
     """
     xy = spots[["x_px", "y_px"]].to_numpy(float)
@@ -209,7 +216,7 @@ def estimate_step_sd_px(
     return float(s), (float(drift[0]), float(drift[1]))
 
 
-# ----------------------------------------------------------------------------------------------------------------
+# ----------------------------------------------------------------------------------------------------
 # linking
 
 
@@ -219,14 +226,21 @@ def _link_frames(df: pd.DataFrame, max_step: float, drift: np.ndarray) -> np.nda
 
     trackpy.quiet(True)
     logging.getLogger("trackpy").setLevel(logging.WARNING)
-    work = pd.DataFrame({
-        "x": df["x_px"].to_numpy(float) - drift[0] * df["frame"].to_numpy(float),
-        "y": df["y_px"].to_numpy(float) - drift[1] * df["frame"].to_numpy(float),
-        "frame": df["frame"].to_numpy(np.int64),
-    })
+    work = pd.DataFrame(
+        {
+            "x": df["x_px"].to_numpy(float) - drift[0] * df["frame"].to_numpy(float),
+            "y": df["y_px"].to_numpy(float) - drift[1] * df["frame"].to_numpy(float),
+            "frame": df["frame"].to_numpy(np.int64),
+        }
+    )
     linked = trackpy.link(
-        work, max_step, pos_columns=["x", "y"], t_column="frame", memory=0,
-        adaptive_stop=max(0.05, 0.2 * max_step), adaptive_step=0.9,
+        work,
+        max_step,
+        pos_columns=["x", "y"],
+        t_column="frame",
+        memory=0,
+        adaptive_stop=max(0.05, 0.2 * max_step),
+        adaptive_step=0.9,
     )
     return linked["particle"].reindex(work.index).to_numpy(np.int64)  # trackpy may reorder rows
 
@@ -319,7 +333,8 @@ def link_spots(
         At least columns ``frame``, ``x_px``, ``y_px`` (as from :func:`msdkit.detect.locate_spots`); other
         columns are carried into the tracks.
     max_step_px : float, px, optional
-        Largest frame-to-frame displacement. Default: 5 x the per-axis step SD estimated from the data, at most
+        Largest frame-to-frame displacement. Default: 5 x the per-axis step SD estimated from the data, at
+        most
         the median distance between neighbouring spots of a frame.
     max_gap_frames : int, default=2
         Longest run of missing frames bridged inside a track (0: no gap closing).
@@ -337,28 +352,48 @@ def link_spots(
 
     References
     ----------
-    Crocker & Grier (1996), Methods of digital video microscopy for colloidal studies, J. Colloid Interface Sci.
+    Crocker & Grier (1996), Methods of digital video microscopy for colloidal studies, J. Colloid Interface
+    Sci.
     179:298, doi:10.1006/jcis.1996.0217 (frame-to-frame linking, as implemented in trackpy).
-    Jaqaman et al. (2008), Robust single-particle tracking in live-cell time-lapse sequences, Nat. Methods 5:695,
+    Jaqaman et al. (2008), Robust single-particle tracking in live-cell time-lapse sequences, Nat. Methods
+    5:695,
     doi:10.1038/nmeth.1237 (gap closing as a global assignment with "no join" alternatives).
     """
     _check_spots(spots)
     if max_step_px is not None and not (np.isfinite(max_step_px) and max_step_px > 0):
-        raise InputError(expected_got("max_step_px", "a positive number of pixels or None (automatic)",
-                                      max_step_px, "Remove linking.max_step_px to choose it from the data."))
+        raise InputError(
+            expected_got(
+                "max_step_px",
+                "a positive number of pixels or None (automatic)",
+                max_step_px,
+                "Remove linking.max_step_px to choose it from the data.",
+            )
+        )
     if int(max_gap_frames) != max_gap_frames or max_gap_frames < 0:
-        raise InputError(expected_got("max_gap_frames", "an integer >= 0", max_gap_frames,
-                                      "Give the longest run of missing frames to bridge, e.g. 2."))
+        raise InputError(
+            expected_got(
+                "max_gap_frames",
+                "an integer >= 0",
+                max_gap_frames,
+                "Give the longest run of missing frames to bridge, e.g. 2.",
+            )
+        )
     if int(min_track_points) != min_track_points or min_track_points < 2:
-        raise InputError(expected_got("min_track_points", "an integer >= 2", min_track_points,
-                                      "A track needs at least two positions."))
+        raise InputError(
+            expected_got(
+                "min_track_points",
+                "an integer >= 2",
+                min_track_points,
+                "A track needs at least two positions.",
+            )
+        )
     max_gap_frames, min_track_points = int(max_gap_frames), int(min_track_points)
     df = spots.sort_values("frame", kind="stable").reset_index(drop=True)
     n_spots = len(df)
     xy = df[["x_px", "y_px"]].to_numpy(float) if n_spots else np.zeros((0, 2))
     frames = df["frame"].to_numpy(np.int64) if n_spots else np.zeros(0, np.int64)
 
-    step_sd, drift = (estimate_step_sd_px(df) if n_spots else (float("nan"), (0.0, 0.0)))
+    step_sd, drift = estimate_step_sd_px(df) if n_spots else (float("nan"), (0.0, 0.0))
     spacing = _spacing(xy, frames) if n_spots else float("nan")
     limited = False
     if max_step_px is None:
@@ -382,8 +417,13 @@ def link_spots(
     if n_spots:
         seg_label = _link_frames(df, step, np.asarray(drift))
         work = df.assign(seg=seg_label)
-        joins = _close_gaps(work.sort_values(["seg", "frame"]), max_step=step, max_gap=max_gap_frames,
-                            step_sd=step_sd, drift=drift)
+        joins = _close_gaps(
+            work.sort_values(["seg", "frame"]),
+            max_step=step,
+            max_gap=max_gap_frames,
+            step_sd=step_sd,
+            drift=drift,
+        )
         # follow the joins: every chain of segments becomes one track
         seg_ids = np.unique(seg_label)
         has_pred = set(joins.values())
@@ -408,7 +448,9 @@ def link_spots(
             work["track"] = work["track"].map(new_id).astype(np.int64)
             work = work.sort_values(["track", "frame"], kind="stable")
             n_gaps = int((work.groupby("track")["frame"].diff() > 1).sum())
-            cols = ["track", "frame", "x_px", "y_px"] + [c for c in df.columns if c not in ("frame", "x_px", "y_px")]
+            cols = ["track", "frame", "x_px", "y_px"] + [
+                c for c in df.columns if c not in ("frame", "x_px", "y_px")
+            ]
             tracks = work[cols].reset_index(drop=True)
             tracks["frame"] = tracks["frame"].astype(np.int64)
     if frame_interval_s is not None:
@@ -434,26 +476,51 @@ def link_spots(
 
 def _check_spots(spots) -> None:
     if not isinstance(spots, pd.DataFrame):
-        raise InputError(expected_got("spots", "a pandas DataFrame", type(spots).__name__,
-                                      "Pass the table returned by locate_spots."))
+        raise InputError(
+            expected_got(
+                "spots",
+                "a pandas DataFrame",
+                type(spots).__name__,
+                "Pass the table returned by locate_spots.",
+            )
+        )
     missing = [c for c in ("frame", "x_px", "y_px") if c not in spots.columns]
     if missing:
-        raise InputError(expected_got("spots", "columns frame, x_px, y_px", f"no column(s) {', '.join(missing)}",
-                                      "Rename the position columns (x = image column, y = image row, in pixels)."))
+        raise InputError(
+            expected_got(
+                "spots",
+                "columns frame, x_px, y_px",
+                f"no column(s) {', '.join(missing)}",
+                "Rename the position columns (x = image column, y = image row, in pixels).",
+            )
+        )
     if len(spots):
         xy = spots[["x_px", "y_px"]].to_numpy(float)
         if not np.all(np.isfinite(xy)):
-            raise InputError(expected_got("spots x_px, y_px", "finite numbers", "NaN or inf",
-                                          "Drop spots without a position before linking."))
+            raise InputError(
+                expected_got(
+                    "spots x_px, y_px",
+                    "finite numbers",
+                    "NaN or inf",
+                    "Drop spots without a position before linking.",
+                )
+            )
         f = spots["frame"].to_numpy()
         if not np.all(np.isfinite(f)) or np.any(f < 0) or np.any(np.asarray(f, float) != np.round(f)):
-            raise InputError(expected_got("spots frame", "integers >= 0", "other values",
-                                          "Number the frames 0, 1, 2, …"))
+            raise InputError(
+                expected_got("spots frame", "integers >= 0", "other values", "Number the frames 0, 1, 2, …")
+            )
 
 
 def _empty_tracks(df: pd.DataFrame) -> pd.DataFrame:
-    out = pd.DataFrame({"track": pd.Series(dtype="int64"), "frame": pd.Series(dtype="int64"),
-                        "x_px": pd.Series(dtype="float64"), "y_px": pd.Series(dtype="float64")})
+    out = pd.DataFrame(
+        {
+            "track": pd.Series(dtype="int64"),
+            "frame": pd.Series(dtype="int64"),
+            "x_px": pd.Series(dtype="float64"),
+            "y_px": pd.Series(dtype="float64"),
+        }
+    )
     for c in df.columns:
         if c not in out.columns:
             out[c] = pd.Series(dtype=df[c].dtype)

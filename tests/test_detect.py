@@ -15,7 +15,7 @@ SEEDS = [0, 1, 2]
 
 
 def render(shape, xs, ys, photons, sigma, background, rng, *, gain=1.0, read_sd=0.0, offset=0.0):
-    """Frame of pixel-integrated Gaussian spots (erf differences) with Poisson noise, camera gain and read noise."""
+    """Frame of pixel-integrated Gaussian spots (erf differences), Poisson noise, camera gain, read noise."""
     ny, nx = shape
     expected = np.full(shape, float(background))
     cols, rows = np.arange(nx), np.arange(ny)
@@ -30,8 +30,10 @@ def render(shape, xs, ys, photons, sigma, background, rng, *, gain=1.0, read_sd=
 
 
 def grid_movie(rng, *, n_frames, sigma, photons, background, shape=(128, 128), spacing=16, **camera):
-    """Spots on a jittered grid (isolated), random sub-pixel positions; returns frames and the true positions."""
-    gx, gy = np.meshgrid(np.arange(spacing - 4, shape[1] - 4, spacing), np.arange(spacing - 4, shape[0] - 4, spacing))
+    """Spots on a jittered grid (isolated) at random sub-pixel positions; returns frames and truth."""
+    gx, gy = np.meshgrid(
+        np.arange(spacing - 4, shape[1] - 4, spacing), np.arange(spacing - 4, shape[0] - 4, spacing)
+    )
     frames, truth = [], []
     for f in range(n_frames):
         xs = gx.ravel() + rng.uniform(-0.5, 0.5, gx.size)
@@ -50,10 +52,17 @@ def match(spots, truth, radius=2.0):
             continue
         d, j = cKDTree(t[["x", "y"]].to_numpy()).query(s[["x_px", "y_px"]].to_numpy())
         ok = d < radius
-        out.append(pd.DataFrame({"dx": s["x_px"].to_numpy()[ok] - t["x"].to_numpy()[j[ok]],
-                                 "dy": s["y_px"].to_numpy()[ok] - t["y"].to_numpy()[j[ok]],
-                                 "x": t["x"].to_numpy()[j[ok]], "y": t["y"].to_numpy()[j[ok]],
-                                 "precision_px": s["precision_px"].to_numpy()[ok]}))
+        out.append(
+            pd.DataFrame(
+                {
+                    "dx": s["x_px"].to_numpy()[ok] - t["x"].to_numpy()[j[ok]],
+                    "dy": s["y_px"].to_numpy()[ok] - t["y"].to_numpy()[j[ok]],
+                    "x": t["x"].to_numpy()[j[ok]],
+                    "y": t["y"].to_numpy()[j[ok]],
+                    "precision_px": s["precision_px"].to_numpy()[ok],
+                }
+            )
+        )
     return pd.concat(out, ignore_index=True)
 
 
@@ -80,7 +89,8 @@ def test_positions_reach_mortensen_precision_without_bias(seed):
     crlb = detect.expected_localization_sd_px(photons, psf_sigma_px=sigma, background_photons_per_px=bg)
     err = np.concatenate([m["dx"], m["dy"]])
     n = err.size
-    # RMS error of an efficient estimator equals the Cramér–Rao bound (Mortensen 2010, Eq. 5); the sample RMS of
+    # RMS error of an efficient estimator equals the Cramér–Rao bound (Mortensen 2010, Eq. 5); the sample RMS
+    # of
     # n Gaussian errors has relative SD 1/sqrt(2n); allow 4 SD above (a fit cannot beat the bound: 4 SD below)
     rms = float(np.sqrt(np.mean(err**2)))
     tol = 4.0 / math.sqrt(2 * n)
@@ -93,7 +103,8 @@ def test_positions_reach_mortensen_precision_without_bias(seed):
 
 
 def test_positions_are_free_of_pixel_locking():
-    # bright spots, errors binned by the true sub-pixel phase: each bin mean within 4 SE of zero. A centroid on a
+    # bright spots, errors binned by the true sub-pixel phase: each bin mean within 4 SE of zero. A centroid
+    # on a
     # small window shows a systematic S-shaped error against phase (common practice).
     rng = np.random.default_rng(11)
     sigma, photons, bg = 1.0, 20000.0, 5.0
@@ -140,7 +151,8 @@ def test_auto_threshold_gives_few_false_spots_on_pure_noise(camera):
 
 
 def test_dim_in_focus_spots_are_kept():
-    # spots 3 noise SDs above the automatic threshold are nearly all found (the matched-filter brightness has a
+    # spots 3 noise SDs above the automatic threshold are nearly all found (the matched-filter brightness has
+    # a
     # Gaussian error of one mass_noise_sd, so recall should be about Phi(3) = 0.9987)
     rng = np.random.default_rng(3)
     sigma, bg = 1.3, 20.0
@@ -159,7 +171,10 @@ def test_chunked_detection_with_first_frame_equals_whole_movie():
     frames, _ = grid_movie(rng, n_frames=7, sigma=1.2, photons=800.0, background=15.0)
     settings = detect.choose_detection_settings(frames)
     whole = detect.locate_spots(frames, settings=settings)
-    parts = [detect.locate_spots(frames[a:b], settings=settings, first_frame=a) for a, b in ((0, 3), (3, 6), (6, 7))]
+    parts = [
+        detect.locate_spots(frames[a:b], settings=settings, first_frame=a)
+        for a, b in ((0, 3), (3, 6), (6, 7))
+    ]
     chunked = pd.concat(parts, ignore_index=True)
     pd.testing.assert_frame_equal(whole, chunked)
 

@@ -1,4 +1,4 @@
-"""Linking: known tracks recovered, gaps bridged without invented positions, step size chosen from the data."""
+"""Linking: known tracks recovered, gaps bridged without invented positions, step size from the data."""
 
 import math
 
@@ -16,15 +16,23 @@ SEEDS = [0, 1, 2]
 def true_spots(rng, *, n_side=6, spacing=80.0, n_frames=120, D_px2=1.0, drift=(0.0, 0.0), noise_px=0.1):
     """Particles starting on a grid (isolated), Brownian motion in pixels (frame interval 1, no blur)."""
     n = n_side * n_side
-    pos = brownian_positions(n, n_frames, D_um2_s=D_px2, frame_interval_s=1.0, localization_sd_um=noise_px,
-                             drift_um_s=np.asarray(drift), rng=rng)
+    pos = brownian_positions(
+        n,
+        n_frames,
+        D_um2_s=D_px2,
+        frame_interval_s=1.0,
+        localization_sd_um=noise_px,
+        drift_um_s=np.asarray(drift),
+        rng=rng,
+    )
     g = (np.arange(n_side) + 0.5) * spacing
     start = np.stack(np.meshgrid(g, g), axis=-1).reshape(n, 1, 2)
     pos = pos + start
     truth = np.repeat(np.arange(n), n_frames)
     frames = np.tile(np.arange(n_frames), n)
-    return pd.DataFrame({"frame": frames, "x_px": pos[..., 0].ravel(), "y_px": pos[..., 1].ravel(),
-                         "truth": truth})
+    return pd.DataFrame(
+        {"frame": frames, "x_px": pos[..., 0].ravel(), "y_px": pos[..., 1].ravel(), "truth": truth}
+    )
 
 
 def wrong_joins(tracks):
@@ -103,7 +111,8 @@ def test_constant_drift_larger_than_the_steps_is_followed():
     # positions are returned as measured, not drift-corrected
     pd.testing.assert_series_equal(
         tracks.sort_values(["truth", "frame"])["x_px"].reset_index(drop=True),
-        spots.sort_values(["truth", "frame"])["x_px"].reset_index(drop=True))
+        spots.sort_values(["truth", "frame"])["x_px"].reset_index(drop=True),
+    )
 
 
 def test_short_tracks_are_dropped_and_ids_are_contiguous():
@@ -130,8 +139,14 @@ def test_given_max_step_is_used():
 
 
 def test_empty_spots_give_empty_tracks():
-    empty = pd.DataFrame({"frame": pd.Series(dtype="int64"), "x_px": pd.Series(dtype=float),
-                          "y_px": pd.Series(dtype=float), "mass": pd.Series(dtype=float)})
+    empty = pd.DataFrame(
+        {
+            "frame": pd.Series(dtype="int64"),
+            "x_px": pd.Series(dtype=float),
+            "y_px": pd.Series(dtype=float),
+            "mass": pd.Series(dtype=float),
+        }
+    )
     tracks, settings = link.link_spots(empty)
     assert len(tracks) == 0 and settings.n_tracks == 0
     assert list(tracks.columns[:4]) == ["track", "frame", "x_px", "y_px"]
