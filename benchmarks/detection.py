@@ -162,8 +162,8 @@ def run_one(seed: int, n_frames: int, size: int, count: float, rng) -> dict:
         [tx[spot_row[matched]], ty[spot_row[matched]]]
     )
     err_in = err[infocus[spot_row[matched]]]
-    # a true particle is "crowded" in a frame when another true particle is within 3 px: one spot may then show
-    # both, and which of the two it is cannot be told
+    # a true particle is "crowded" in a frame when another true particle is within 3 px: one spot may then
+    # show both, and which of the two it is cannot be told
     crowded = np.zeros(len(truth), dtype=bool)
     for _, rows in truth.groupby("frame").indices.items():
         if len(rows) > 1:
@@ -257,18 +257,20 @@ def main() -> None:
         )
         print(
             f"  detection: recall (in focus) {r['recall_in_focus']:.3f}, precision {r['precision']:.3f}; "
-            f"localisation RMS error {r['loc_rms_in_focus_nm']:.1f} nm in focus, {r['loc_rms_all_nm']:.1f} nm "
-            f"all (median precision estimate {r['median_precision_nm']:.1f} nm)"
+            f"localisation RMS error {r['loc_rms_in_focus_nm']:.1f} nm in focus, "
+            f"{r['loc_rms_all_nm']:.1f} nm all (median precision estimate {r['median_precision_nm']:.1f} nm)"
         )
         print(
             f"  linking: max step {r['max_step_px']:.1f} px (step SD {r['step_sd_px']:.2f} px"
             f"{', limited by spacing' if r['limited_by_spacing'] else ''}), {r['n_tracks']} tracks, "
             f"{100 * r['fraction_linked']:.1f} % of spots linked, wrong-join rate "
-            f"{100 * r['link_error_rate']:.2f} % (of {r['n_links_checked']} links between uncrowded particles)"
+            f"{100 * r['link_error_rate']:.2f} % "
+            f"(of {r['n_links_checked']} links between uncrowded particles)"
         )
         print(
             f"  D: {r['D_est']:.3f} um2/s (95 % CI {r['D_ci95'][0]:.3f}-{r['D_ci95'][1]:.3f}) vs truth "
-            f"{r['D_true']:.3f} -> {100 * (r['D_est'] / r['D_true'] - 1):+.2f} %; same points at true positions "
+            f"{r['D_true']:.3f} -> {100 * (r['D_est'] / r['D_true'] - 1):+.2f} %; "
+            f"same points at true positions "
             f"{r['D_true_positions']:.3f} ({100 * (r['D_true_positions'] / r['D_true'] - 1):+.2f} %)"
         )
         print(
