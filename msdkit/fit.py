@@ -8,12 +8,18 @@ Estimators of D (all corrected for localisation error and motion blur, R = t_E /
 ``"likelihood"``
     Maximum likelihood on the steps, whose covariance the discrete sine transform diagonalises (Berglund 2010;
     Vestergaard et al. 2014): at the bound for any x.
+``"one_step_likelihood"``
+    One Fisher-scoring step of each track's likelihood from the pooled maximum-likelihood fit of all tracks
+    given (Le Cam's one-step estimator): a weighted least-squares fit of the track's sine modes with weights
+    set by the sample's noise ratio. Exactly unbiased, at the bound when tracks share x, and free of the
+    small-sample bias of a fully iterated likelihood on short, noisy tracks.
 ``"msd_fit"``
-    Unweighted fit of the time-averaged MSD on lags 1..p with p chosen from the estimated x (Michalet 2010).
+    Unweighted fit of the time-averaged MSD on lags 1..p with p optimal for the estimated x (Michalet 2010),
+    the iteration on x run on the pooled tracks.
 ``"auto"``
     ``"covariance"`` when the pooled estimate of x over all tracks given is at most :data:`AUTO_X_SWITCH`,
-    ``"likelihood"`` otherwise (see benchmarks/estimators.py). The choice is made once per call from pooled
-    data, so it does not select tracks by their own noisy estimates (which would bias averages).
+    ``"one_step_likelihood"`` otherwise (see benchmarks/estimators.py). The choice is made once per call from
+    pooled data, so tracks are not selected by their own noisy estimates (which would bias averages).
 
 Gaps: only steps between consecutive frames are used; a track with missed frames is a set of independent
 segments (see :mod:`msdkit.estimators.increments`). Single-track estimates of D can be negative and are never
@@ -42,7 +48,7 @@ from .msd import time_averaged_msd
 
 __all__ = ["fit_tracks", "fit_sample", "SampleFit", "cramer_rao_relative_sd", "METHODS", "AUTO_X_SWITCH"]
 
-METHODS = ("auto", "covariance", "likelihood", "msd_fit")
+METHODS = ("auto", "covariance", "likelihood", "one_step_likelihood", "msd_fit")
 #: Pooled reduced error above which ``auto`` uses maximum likelihood instead of the covariance estimator.
 AUTO_X_SWITCH = 0.3
 #: Largest lag for the optimal-lag MSD fit.
@@ -114,7 +120,7 @@ def _resolve_method(method: str, st: Steps, R: float) -> tuple[str, float]:
     x = float(2.0 * s / b) if b > 0 else np.inf
     if method != "auto":
         return method, x
-    return ("covariance" if x <= AUTO_X_SWITCH else "likelihood"), x
+    return ("covariance" if x <= AUTO_X_SWITCH else "one_step_likelihood"), x
 
 
 def _padded_groups(n_modes: np.ndarray, ratio: float = 1.25):
@@ -161,6 +167,55 @@ def _likelihood_tracks(st: Steps, usable: np.ndarray, *, n_dims: int, R: float):
         l_, h_ = dif.ml_interval(bb, s_hat, L, w, n_dims=n_dims, R=R)
         b[idx], a[idx], lo[idx], hi[idx], conv[idx] = bb, aa, l_, h_, cv
     return b, a, lo, hi, conv
+
+
+def _pooled_modes(modes, usable: np.ndarray):
+    """Sine modes of the usable tracks: lam, power and the index (0..n_usable-1) of their track."""
+    lam, power, mode_track = modes
+    idx = np.flatnonzero(usable)
+    keep = usable[mode_track]
+    return lam[keep], power[keep], np.searchsorted(idx, mode_track[keep])
+
+
+def _pooled_ml(lam, power, n_dims: int):
+    """Maximum likelihood (b, a) shared by all modes given."""
+    bb, aa, _, _ = dif.ml_fit(lam[None], power[None], np.ones((1, lam.size)), n_dims=n_dims)
+    return float(bb[0]), float(aa[0])
+
+
+def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: int, R: float):
+    """Per-track estimators that are fixed-weight sums of the sine modes, with skewness-aware intervals.
+
+    kind = "one_step": weights of one likelihood-scoring step from the pooled fit (weighted least squares at
+    the sample's noise ratio). kind = "covariance": the covariance-based estimator, which is the same kind of
+    sum because its step moments are diagonal in the sine basis: sum_k dx_k^2 = sum_k P_k^2 and
+    sum_k dx_k dx_(k+1) = sum_k cos(pi k/(m+1)) P_k^2 within a segment of m steps.
+    """
+    modes = sine_modes(st)
+    lam, power, _ = modes
+    rho = 0.0
+    if kind == "one_step":
+        b0, a0 = _pooled_ml(*_pooled_modes(modes, usable)[:2], n_dims)
+        rho = a0 / b0 if b0 > 0 else 0.0
+    n_tr = st.ids.size
+    out = {k: np.full(n_tr, np.nan) for k in ("b", "a", "lo", "hi")}
+    first = np.concatenate([[0], np.cumsum(st.n_steps)[:-1]])
+    idx_all = np.flatnonzero(usable)
+    for grp, K in _padded_groups(st.n_steps[idx_all]):
+        idx = idx_all[grp]
+        w, (L, S) = _fill_padded(idx, K, first, st.n_steps, lam, power)
+        if kind == "one_step":
+            b, a, _, _, _, c = dif.gls_fixed_ratio(L, S, w, rho, n_dims=n_dims)
+        else:
+            n1 = st.n_steps[idx][:, None].astype(float)
+            n2 = st.n_pairs[idx][:, None].astype(float)
+            c = w * (1.0 / n1 + (2.0 - L) / n2)
+            b = (c * S).sum(1) / n_dims
+            a = -((w * (1.0 - L / 2.0) * S).sum(1) / (n_dims * n2[:, 0]))
+        m2, m3 = dif.weighted_chi2_moments(c, L, w, R=R)
+        lo, hi = dif.skewed_interval(b, np.maximum(a + R * b, 0.0), m2, m3, n_dims=n_dims)
+        out["b"][idx], out["a"][idx], out["lo"][idx], out["hi"][idx] = b, a, lo, hi
+    return out["b"], out["a"], out["lo"], out["hi"]
 
 
 def _msd_matrix(tracks, st: Steps, max_lag: int, n_dims: int):
@@ -271,7 +326,7 @@ def fit_tracks(
     exposure_s : float, s
         Shutter-open time per frame (0 = instantaneous; None = the frame interval).
     n_dims : int, default=2
-    method : {"auto", "covariance", "likelihood", "msd_fit"}, default="auto"
+    method : {"auto", "covariance", "likelihood", "one_step_likelihood", "msd_fit"}, default="auto"
         Estimator of D (see the module notes).
     sigma_um : float, optional, µm
         The sample's shared localisation error, used to stabilise each track's anomalous exponent. By
@@ -317,18 +372,18 @@ def fit_tracks(
     usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
     status = np.where(usable, "ok", "too_short").astype(object)
 
-    if chosen == "covariance":
-        b, a = dif.covariance_estimate(st.sum_sq, st.n_steps, st.sum_cross, st.n_pairs, n_dims=n_dims, R=R)
-        k = dif.covariance_variance_coefficients(np.maximum(st.n_steps, 1), n_dims=n_dims)
-        s = a + R * b
-        lo, hi = dif.quadratic_interval(b, np.maximum(s, 0.0), *k, R=R)
+    if chosen in ("covariance", "one_step_likelihood"):
+        kind = "covariance" if chosen == "covariance" else "one_step"
+        b, a, lo, hi = _weighted_mode_tracks(st, usable, kind, n_dims=n_dims, R=R)
     elif chosen == "likelihood":
         b, a, lo, hi, conv = _likelihood_tracks(st, usable, n_dims=n_dims, R=R)
         status[usable & ~conv] = "not_converged"
     else:  # msd_fit
         p_max = int(min(MSD_FIT_MAX_LAG, max(2, st.n_steps.max(initial=2))))
-        y, _ = _msd_matrix(tracks, st, p_max, n_dims)
-        b, a, p, k = dif.optimal_lag_fit(y, np.maximum(st.n_steps, 2), p_max=p_max)
+        y, npairs = _msd_matrix(tracks, st, p_max, n_dims)
+        y[~usable] = np.nan
+        npairs[~usable] = 0
+        b, a, p, k = dif.optimal_lags_pooled(y, npairs, np.maximum(st.n_steps, 2), p_max=p_max)
         s = a + R * b
         lo, hi = dif.quadratic_interval(b, np.maximum(s, 0.0), k[:, 0] / n_dims, k[:, 1] / n_dims,
                                         k[:, 2] / n_dims, R=R)
@@ -482,12 +537,9 @@ def fit_sample(
         def boot_b(cnt):
             sums = cnt @ per
             return dif.covariance_estimate(*sums.T, n_dims=d, R=R)[0]
-    elif chosen == "likelihood":
-        lam, power, mode_track = sine_modes(st)
-        keep = usable[mode_track]
-        lam, power, mode_track = lam[keep], power[keep], np.searchsorted(idx, mode_track[keep])
-        bb, aa, _, _ = dif.ml_fit(lam[None], power[None], np.ones((1, lam.size)), n_dims=d)
-        b, a = float(bb[0]), float(aa[0])
+    elif chosen in ("likelihood", "one_step_likelihood"):
+        lam, power, mode_track = _pooled_modes(sine_modes(st), usable)
+        b, a = _pooled_ml(lam, power, d)
         psi = b + a * lam
         res = power / d - psi
         r = 1.0 / psi**2

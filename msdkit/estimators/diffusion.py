@@ -22,6 +22,7 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
+from scipy import special
 
 #: Two-sided 95 % standard-normal quantile.
 Z95 = 1.959963984540054
@@ -306,6 +307,119 @@ def ml_interval(b_hat, s_hat, lam, w, *, n_dims: int, R: float, z: float = Z95, 
     return out[0], out[1]
 
 
+def gls_fixed_ratio(lam, S, w, rho, *, n_dims: int):
+    """One Fisher-scoring step of the likelihood from a shared noise ratio rho = a/b (weighted least squares).
+
+    Parameters
+    ----------
+    lam, S, w : (n_rows, n_modes) arrays as in :func:`ml_fit`.
+    rho : float
+        a/b at which the weights 1/psi_k^2 are evaluated (e.g. from the pooled fit of a sample).
+
+    Returns
+    -------
+    b, a : arrays
+    kbb, kab, kaa : arrays
+        Exact variance coefficients, Var(b_hat) = kbb b^2 + 2 kab a b + kaa a^2 at the true (b, a).
+    c : (n_rows, n_modes) array
+        The weights, b_hat = sum_k c_k S_k / d.
+
+    Notes
+    -----
+    Because psi_k = b + a lambda_k is linear in (b, a), a scoring step from any (b0, a0) is the weighted
+    least-squares fit of S_k/d on (1, lambda_k) with weights (1 + rho lambda_k)^-2, rho = a0/b0. With
+    weights that do not depend on the track's own data the estimate is exactly unbiased, and its variance
+    equals the Cramér-Rao bound when the track's true ratio is rho (Le Cam's one-step estimator; Gaussian
+    model of Berglund 2010 and Vestergaard et al. 2014). Var(S_k/d) = 2 psi_k^2 / d gives the variance.
+    """
+    lam, S, w = np.asarray(lam, float), np.asarray(S, float), np.asarray(w, float)
+    r = w / (1.0 + rho * lam) ** 2
+    y = S / n_dims
+    s0, s1, s2 = r.sum(1), (r * lam).sum(1), (r * lam * lam).sum(1)
+    t0, t1 = (r * y).sum(1), (r * lam * y).sum(1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        det = s0 * s2 - s1 * s1
+        b = (s2 * t0 - s1 * t1) / det
+        a = (s0 * t1 - s1 * t0) / det
+        c = r * (s2[:, None] - s1[:, None] * lam) / det[:, None]
+    c2 = c * c * (w > 0)
+    f = 2.0 / n_dims
+    return b, a, f * c2.sum(1), f * (c2 * lam).sum(1), f * (c2 * lam * lam).sum(1), c
+
+
+def weighted_chi2_moments(c, lam, w, *, R: float):
+    """Polynomial coefficients in b of the 2nd and 3rd cumulants of b_hat = sum_k c_k S_k / d.
+
+    With psi_k = b u_k + s lambda_k (u_k = 1 - R lambda_k) and S_k/d ~ psi_k chi^2_d / d independent:
+    kappa2 = (2/d) sum (c psi)^2, kappa3 = (8/d^2) sum (c psi)^3. Returns m2 (n, 3) and m3 (n, 4) so that
+    sum (c psi)^2 = m2 . (b^2, b s, s^2) and sum (c psi)^3 = m3 . (b^3, b^2 s, b s^2, s^3) (binomial factors
+    included).
+    """
+    u = 1.0 - R * lam
+    c = c * (w > 0)
+    m2 = np.stack([(c * c * u * u).sum(1), 2 * (c * c * u * lam).sum(1), (c * c * lam * lam).sum(1)], 1)
+    c3 = c * c * c
+    m3 = np.stack([(c3 * u**3).sum(1), 3 * (c3 * u * u * lam).sum(1), 3 * (c3 * u * lam * lam).sum(1),
+                   (c3 * lam**3).sum(1)], 1)
+    return m2, m3
+
+
+def _gamma_quantile(mean, k2, k3, p):
+    """Quantile p of the shifted gamma law with the given mean, variance k2 and third cumulant k3."""
+    sd = np.sqrt(np.maximum(k2, 1e-300))
+    skew = k3 / sd**3
+    z = special.ndtri(p)
+    small = np.abs(skew) < 1e-3
+    sk = np.where(small, 1.0, skew)
+    shape = 4.0 / (sk * sk)
+    sign = np.sign(sk)
+    pp = np.where(sign > 0, p, 1.0 - p)
+    with np.errstate(over="ignore", invalid="ignore"):
+        g = special.gammaincinv(shape, pp)
+    q = mean + sign * sd * (g - shape) / np.sqrt(shape)
+    return np.where(small, mean + z * sd, q)
+
+
+def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: int = 40):
+    """95 % interval for b > 0 by inverting quantiles of a weighted chi-square sum at each hypothesised b.
+
+    b is in the interval when b_hat lies between the 2.5 % and 97.5 % quantiles of its distribution under
+    (b, s), approximated by a shifted gamma law with the exact first three cumulants (Pearson type III). This
+    keeps the right skew of short, noisy tracks; for long tracks it reduces to the score-type interval. The
+    upper end is +inf when even an arbitrarily large b leaves b_hat above its lower quantile (a 20-point
+    track with x = 10 cannot bound D from above at 95 %).
+    """
+    b_hat = np.asarray(b_hat, float)
+    s = np.broadcast_to(np.asarray(s, float), b_hat.shape)
+    p_lo, p_hi = special.ndtr(-z), special.ndtr(z)
+
+    def quant(b, p):
+        k2 = (2.0 / n_dims) * (m2[:, 0] * b * b + m2[:, 1] * b * s + m2[:, 2] * s * s)
+        k3 = (8.0 / n_dims**2) * (m3[:, 0] * b**3 + m3[:, 1] * b * b * s + m3[:, 2] * b * s * s + m3[:, 3] * s**3)
+        return _gamma_quantile(b, k2, k3, p)
+
+    scale = np.maximum(np.abs(b_hat), np.sqrt(np.maximum(m2[:, 2] * s * s, 0.0))) + 1e-300
+    out = []
+    for p, side in ((p_hi, "lo"), (p_lo, "hi")):
+        # f(b) = quantile_p(b) - b_hat is increasing in b; find its root on a log scale in b
+        lo_b = np.log(scale * 1e-7)
+        hi_b = np.log(scale * 1e7)
+        f_lo = quant(np.exp(lo_b), p) - b_hat
+        f_hi = quant(np.exp(hi_b), p) - b_hat
+        for _ in range(n_iter):
+            mid = 0.5 * (lo_b + hi_b)
+            fm = quant(np.exp(mid), p) - b_hat
+            up = fm > 0
+            hi_b = np.where(up, mid, hi_b)
+            lo_b = np.where(up, lo_b, mid)
+        root = np.exp(0.5 * (lo_b + hi_b))
+        if side == "lo":
+            out.append(np.where(f_lo >= 0, 0.0, np.where(f_hi < 0, np.inf, root)))
+        else:
+            out.append(np.where(f_hi <= 0, np.inf, np.where(f_lo > 0, 0.0, root)))
+    return out[0], out[1]
+
+
 def cramer_rao_var_b(n_steps: int, b: float, a: float, *, n_dims: int = 2, R: float = 0.0,
                      s_known: bool = False) -> float:
     """Cramér-Rao bound on Var(b_hat) for one track of n_steps steps without gaps.
@@ -376,6 +490,79 @@ def slope_variance_terms(n_steps: int, p_max: int) -> np.ndarray:
         w = (n - n.mean()) / np.sum((n - n.mean()) ** 2)
         out[p] = [w @ Q[:p, :p] @ w for Q in (Qbb, Qab, Qaa)]
     return out
+
+
+def optimal_lags_pooled(y, npairs, n_steps, *, p_max: int, n_iter: int = 10):
+    """Optimal-lag MSD fit with the lag count chosen from the pooled tracks' reduced error.
+
+    The iteration of Michalet (2010) runs on the pair-weighted ensemble MSD (fit on lags 1..p, estimate
+    x = 2a/b, choose p minimising the predicted variance for the median track length, repeat); each track
+    is then fitted on lags 1..p_t with p_t optimal for its own length at the pooled x. The choice of p does
+    not depend on a track's own data, so each track's slope is an exactly unbiased estimate of b (a
+    per-track choice of p correlates p with the data and biases D at high x). For a single track this is
+    Michalet's per-track iteration.
+
+    Parameters
+    ----------
+    y, npairs : (n_tracks, p_max) per-axis TA-MSD (NaN where missing) and pair counts.
+    n_steps : (n_tracks,) steps per track.
+
+    Returns
+    -------
+    b, a, p, k : per-track slope, half intercept, lag count and variance coefficients (n_tracks, 3).
+    """
+    T = y.shape[0]
+    ns = np.maximum(np.asarray(n_steps, int), 2)
+    wy = np.where(npairs > 0, npairs * np.nan_to_num(y), 0.0).sum(0)
+    wn = npairs.sum(0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ens = wy / wn
+    n_avail = int(np.argmin(np.append(np.isfinite(ens), False)))  # leading lags with data
+    n_med = int(np.median(ns))
+    p = min(2, n_avail)
+    b = a = np.nan
+    for _ in range(n_iter):
+        if p < 2:
+            break
+        lag = np.arange(1, p + 1, dtype=float)
+        wts = (lag - lag.mean()) / np.sum((lag - lag.mean()) ** 2)
+        b = float(ens[:p] @ wts)
+        a = float((ens[:p].mean() - b * lag.mean()) / 2.0)
+        p_new = _best_p(slope_variance_terms(n_med, p_max), b, a, min(n_avail, p_max, n_med))
+        if p_new == p:
+            break
+        p = p_new
+    # per-track lag counts at the pooled (b, a)
+    p_t = np.full(T, 2)
+    for N in np.unique(ns):
+        p_t[ns == N] = _best_p(slope_variance_terms(int(N), p_max), b, a, min(int(N), p_max))
+    lagm = np.arange(1, p_max + 1, dtype=float)
+    use = (lagm[None, :] <= p_t[:, None]) & np.isfinite(y)
+    cnt = use.sum(1)
+    mn = (use * lagm).sum(1) / cnt
+    dev = np.where(use, lagm - mn[:, None], 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        bt = (dev * np.where(use, y, 0.0)).sum(1) / (dev * dev).sum(1)
+        at = ((np.where(use, y, 0.0)).sum(1) / cnt - bt * mn) / 2.0
+    enough = cnt >= 2  # a missing lag (gaps) leaves the fit on the lags that have pairs
+    bt = np.where(enough, bt, np.nan)
+    at = np.where(enough, at, np.nan)
+    k = np.full((T, 3), np.nan)
+    for N in np.unique(ns):
+        sel = ns == N
+        k[sel] = slope_variance_terms(int(N), p_max)[p_t[sel]]
+    return bt, at, p_t, k
+
+
+def _best_p(terms, b, a, p_lim):
+    if not (np.isfinite(b) and np.isfinite(a)):
+        return 2
+    bb = b if b > 0 else max(abs(a), 1e-300) * 1e-6
+    var = terms[:, 0] * bb * bb + 2 * terms[:, 1] * a * bb + terms[:, 2] * a * a
+    var[: 2] = np.inf
+    var[p_lim + 1:] = np.inf
+    var = np.where(np.isfinite(var), var, np.inf)
+    return int(np.argmin(var)) if np.isfinite(var).any() else 2
 
 
 def optimal_lag_fit(y, n_steps, *, p_max: int, n_iter: int = 10):
