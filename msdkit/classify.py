@@ -424,8 +424,8 @@ class SampleMotion:
     class_counts, class_fractions : per-track motion classes.
     msd_comparison : DataFrame ``lag_frames, lag_s, ta_msd_um2, ea_msd_um2, n_tracks`` (time-averaged MSD
         averaged over tracks, and ensemble-averaged MSD from each track's first position).
-    alpha_ta, alpha_ea : log-log slopes of the two over the same lags; alpha_ea_minus_ta_ci95 the 99 %
-        bootstrap interval of their difference (field name kept for the pipeline; the level is 99 %).
+    alpha_ta, alpha_ea : log-log slopes of the two over the same lags; alpha_ea_minus_ta_ci99 the 99 %
+        bootstrap interval of their difference.
     ergodicity_breaking, ergodicity_breaking_brownian : EB = Var/mean² over tracks of the time-averaged MSD at
         ``eb_lag_frames``, and its value expected for Brownian motion with the sample's D, noise and track
         lengths (Qian's ratio generalised to localisation noise).
@@ -447,7 +447,7 @@ class SampleMotion:
     msd_comparison: pd.DataFrame = field(repr=False)
     alpha_ta: float
     alpha_ea: float
-    alpha_ea_minus_ta_ci95: tuple[float, float]
+    alpha_ea_minus_ta_ci99: tuple[float, float]
     ergodicity_breaking: float
     ergodicity_breaking_brownian: float
     non_gaussian: float
@@ -467,7 +467,7 @@ class SampleMotion:
         out["msd_comparison"] = {c: self.msd_comparison[c].tolist() for c in self.msd_comparison.columns}
         out["flags"] = list(self.flags)
         out["alpha_ci95"] = list(self.alpha_ci95)
-        out["alpha_ea_minus_ta_ci95"] = list(self.alpha_ea_minus_ta_ci95)
+        out["alpha_ea_minus_ta_ci99"] = list(self.alpha_ea_minus_ta_ci99)
         out["drift_um_s"] = list(self.drift_um_s)
         return out
 
@@ -760,7 +760,7 @@ def sample_motion(
     return SampleMotion(
         alpha=float(alpha), alpha_ci95=(float(alpha_ci[0]), float(alpha_ci[1])), n_tracks=int(fits.ids.size),
         n_tracks_used=n_used, class_counts=counts, class_fractions=fractions, msd_comparison=cmp,
-        alpha_ta=float(a_ta), alpha_ea=float(a_ea), alpha_ea_minus_ta_ci95=diff_ci,
+        alpha_ta=float(a_ta), alpha_ea=float(a_ea), alpha_ea_minus_ta_ci99=diff_ci,
         ergodicity_breaking=float(eb), ergodicity_breaking_brownian=float(eb_exp), non_gaussian=float(ng),
         non_gaussian_se=float(ng_se), non_gaussian_within=float(ng_within), heterogeneity_ratio=float(het_ratio),
         heterogeneity_p=float(het_p), amplitude_spread=float(spread), drift_um_s=drift_v,

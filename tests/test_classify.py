@@ -1,0 +1,294 @@
+"""Motion models, per-track classes and sample flags, checked against published laws and known truth."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from msdkit.classify import CLASS_COLUMNS, SampleMotion, classify_tracks, sample_motion
+from msdkit.drift import estimate_drift, remove_drift
+from msdkit.errors import InputError
+from msdkit.motion_models import (
+    brownian_msd_um2,
+    confined_msd_um2,
+    directed_msd_um2,
+    expected_periodogram,
+    fbm_msd_um2,
+    fit_step_models,
+    periodograms,
+    split_cosine_taper,
+    ta_msd_relative_variance,
+)
+from msdkit.schema import MOTION_CLASSES
+from msdkit.simulate import (
+    brownian_positions,
+    confined_positions,
+    directed_positions,
+    fbm_positions,
+    positions_to_tracks,
+)
+
+DT = 0.03
+
+
+def _tracks(pos):
+    return positions_to_tracks(pos, frame_interval_s=DT)
+
+
+# ------------------------------------------------------------------------------------------ MSD laws
+def test_confined_msd_levels_off_at_L2_over_6_per_axis():
+    # Saxton & Jacobson 1997 (Annu. Rev. Biophys. Biomol. Struct. 26:373): plateau L²/6 per axis, i.e.
+    # (L²/3)(1 - exp(-12 D t / L²)) in 2D; both forms start with slope 2dD.
+    L, D = 0.8, 0.5
+    t = np.array([1e-5, 100.0])
+    for exact in (True, False):
+        m = confined_msd_um2(t, D_um2_s=D, box_um=L, n_dims=2, exact=exact)
+        assert m[1] == pytest.approx(L**2 / 3, rel=1e-9)
+        assert m[0] / t[0] == pytest.approx(4 * D, rel=2e-2)
+    approx = confined_msd_um2(np.array([0.02]), D_um2_s=D, box_um=L, exact=False)
+    assert approx[0] == pytest.approx(L**2 / 3 * (1 - np.exp(-12 * D * 0.02 / L**2)))
+
+
+def test_simulated_confined_motion_reaches_the_plateau():
+    # Plateau of the time-averaged MSD of reflected motion in a box, per axis L²/6 (Saxton & Jacobson 1997).
+    rng = np.random.default_rng(1)
+    L = 0.6
+    pos = confined_positions(200, 400, D_um2_s=1.0, box_um=L, frame_interval_s=DT, rng=rng)
+    lag = 200
+    msd_x = np.mean((pos[:, lag:, 0] - pos[:, :-lag, 0]) ** 2)
+    assert msd_x == pytest.approx(L**2 / 6, rel=0.05)
+
+
+def test_directed_msd_is_4Dt_plus_v2t2():
+    # MSD = 4Dt + v²t² in 2D (common practice; Saxton & Jacobson 1997), formula and simulation.
+    D, v = 0.2, 1.5
+    t = np.array([0.1, 1.0])
+    assert np.allclose(directed_msd_um2(t, D_um2_s=D, speed_um_s=v), 4 * D * t + v**2 * t**2)
+    rng = np.random.default_rng(2)
+    pos = directed_positions(4000, 11, D_um2_s=D, speed_um_s=v, frame_interval_s=DT, rng=rng)
+    n = 10
+    ea = np.sum((pos[:, n] - pos[:, 0]) ** 2, axis=1)
+    expect = 4 * D * n * DT + (v * n * DT) ** 2
+    # ensemble mean over 4000 tracks: relative SE about 1.6 %, 5 SE tolerance
+    assert ea.mean() == pytest.approx(expect, rel=5 * ea.std() / ea.mean() / np.sqrt(ea.size))
+
+
+def test_blurred_power_law_with_alpha_1_is_the_berglund_msd():
+    # Berglund 2010 (Phys. Rev. E 82:011917): MSD = 2d[D(t - t_E/3) + sigma²] for uniform exposure.
+    t = np.arange(1, 20) * DT
+    a = fbm_msd_um2(t, K_um2_s_alpha=0.7, alpha=1.0, sigma_um=0.03, exposure_s=0.02)
+    b = brownian_msd_um2(t, D_um2_s=0.7, sigma_um=0.03, exposure_s=0.02)
+    assert np.allclose(a, b, rtol=1e-9)
+    assert np.allclose(b, 4 * (0.7 * (t - 0.02 / 3) + 0.03**2))
+
+
+def test_time_averaged_msd_variance_equals_qian_ratio():
+    # Qian, Sheetz & Elson 1991 (Biophys. J. 60:910) via METHODS.md: N_s = 20 steps, n = 1 -> 0.05,
+    # n = 10 -> 0.47273 (2D Brownian, no noise).
+    M = 2.0 * np.arange(21)  # per-axis MSD 2 D n with D dt = 1
+    assert ta_msd_relative_variance(M, 1, 20) == pytest.approx(0.05, rel=1e-9)
+    assert ta_msd_relative_variance(M, 10, 20) == pytest.approx(0.47273, rel=1e-4)
+    K = 20
+    for n in (2, 5, 15):
+        k = K - n + 1
+        qian = (4 * n**2 * k + 2 * k + n - n**3) / (6 * n * k**2) if n <= k else \
+            1 + (k**3 - 4 * n * k**2 + 4 * n - k) / (6 * n**2 * k)
+        assert ta_msd_relative_variance(M, n, K) == pytest.approx(qian, rel=1e-9)
+
+
+@pytest.mark.parametrize("alpha, exposure", [(0.5, 0.0), (1.4, DT)])
+def test_expected_periodogram_matches_the_mean_over_simulated_tracks(alpha, exposure):
+    # Debiased Whittle (Sykulski et al. 2019, Biometrika 106:251): E[periodogram] is exact for finite N.
+    rng = np.random.default_rng(3)
+    N = 64
+    pos = fbm_positions(3000, N + 1, alpha=alpha, K_um2_s_alpha=1.0, frame_interval_s=DT, exposure_s=exposure,
+                        localization_sd_um=0.05, rng=rng)
+    h = split_cosine_taper(N)
+    P = periodograms(np.diff(pos, axis=1), h) / 2  # per axis
+    t = np.arange(N + 1) * DT
+    M = fbm_msd_um2(t, K_um2_s_alpha=1.0, alpha=alpha, sigma_um=0.05, exposure_s=exposure, n_dims=1)
+    expect = expected_periodogram(M, h)
+    mean = P.mean(axis=0)
+    se = P.std(axis=0) / np.sqrt(P.shape[0])
+    # the blurred simulator averages 11 sub-frame points, the formula a continuous exposure: 2 % allowance
+    assert np.all(np.abs(mean - expect) < 5 * se + 0.02 * expect)
+
+
+def test_profile_interval_of_alpha_covers_the_truth():
+    # 95 % profile-likelihood interval: coverage over 300 FBM tracks stays within a binomial band.
+    rng = np.random.default_rng(4)
+    pos = fbm_positions(300, 201, alpha=0.6, K_um2_s_alpha=1.0, frame_interval_s=1.0, exposure_s=0.0,
+                        localization_sd_um=0.5, rng=rng)
+    f = fit_step_models(np.diff(pos, axis=1), exposure_ratio=0.0)
+    cover = np.mean((f.alpha_lo <= 0.6) & (f.alpha_hi >= 0.6))
+    assert cover >= stats.binom.ppf(0.0005, 300, 0.93) / 300
+    assert abs(np.median(f.alpha) - 0.6) < 0.05
+
+
+# ------------------------------------------------------------------------------------ per-track classes
+def test_output_has_the_documented_columns_and_classes():
+    rng = np.random.default_rng(0)
+    pos = brownian_positions(5, 60, D_um2_s=0.5, frame_interval_s=DT, rng=rng)
+    tracks = _tracks(pos)
+    tracks = pd.concat([tracks, pd.DataFrame({"track": [99] * 4, "frame": [0, 1, 2, 3], "time_s": 0.0,
+                                              "x_um": 0.0, "y_um": [0.0, 0.1, 0.2, 0.1]})])
+    out = classify_tracks(tracks, frame_interval_s=DT, exposure_s=0.0)
+    assert list(out.columns) == list(CLASS_COLUMNS)
+    assert set(out["motion_class"]) <= set(MOTION_CLASSES)
+    assert out.set_index("track").loc[99, "motion_class"] == "undetermined"  # too short to tell
+
+
+def test_brownian_tracks_are_mostly_called_normal():
+    # Per-track false alarms: anomalous at 5 % (alpha interval excludes 1) plus confined and directed at
+    # 1 % each -> at most ~8 % non-normal; binomial bound at 10 % for 600 tracks.
+    rng = np.random.default_rng(5)
+    pos = np.concatenate([
+        brownian_positions(300, 100, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT,
+                           localization_sd_um=np.sqrt(x * 0.5 * DT), rng=rng) for x in (0.0, 2.0)])
+    out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=DT)
+    wrong = np.sum(~out["motion_class"].isin(["normal", "undetermined"]))
+    assert wrong <= stats.binom.ppf(0.9995, 600, 0.10)
+    # alpha interval covers 1 about 95 % of the time
+    cover = np.mean((out.alpha_ci95_lo <= 1) & (out.alpha_ci95_hi >= 1))
+    assert cover >= stats.binom.ppf(0.0005, 600, 0.94) / 600
+
+
+@pytest.mark.parametrize("cls", ["subdiffusive", "superdiffusive", "confined", "directed", "immobile"])
+def test_each_class_is_recognised_at_300_points(cls):
+    # Clear cases of each model at 300 points, x = 1: at least ~85 % recognised (binomial bound for 80 tracks).
+    rng = np.random.default_rng(6)
+    n, N, D = 80, 300, 0.5
+    s = np.sqrt(D * DT)
+    if cls == "subdiffusive":
+        pos = fbm_positions(n, N, alpha=0.4, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng)
+    elif cls == "superdiffusive":
+        pos = fbm_positions(n, N, alpha=1.6, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng)
+    elif cls == "confined":
+        pos = confined_positions(n, N, D_um2_s=D, box_um=np.sqrt(12 * D * 4 * DT), frame_interval_s=DT,
+                                 localization_sd_um=s, rng=rng)
+    elif cls == "directed":
+        pos = directed_positions(n, N, D_um2_s=D, speed_um_s=0.8 * np.sqrt(D / DT), frame_interval_s=DT,
+                                 localization_sd_um=s, rng=rng)
+    else:
+        pos = 0.03 * rng.standard_normal((n, N, 2))
+    out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
+    hits = int(np.sum(out["motion_class"] == cls))
+    assert hits >= stats.binom.ppf(0.001, n, 0.9), out["motion_class"].value_counts()
+
+
+def test_confinement_size_and_speed_are_recovered():
+    rng = np.random.default_rng(8)
+    L = 0.5
+    pos = confined_positions(60, 500, D_um2_s=0.5, box_um=L, frame_interval_s=DT, localization_sd_um=0.02,
+                             rng=rng)
+    out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
+    conf = out[out.motion_class == "confined"]
+    assert len(conf) >= 50
+    assert np.median(conf.confinement_um) == pytest.approx(L, rel=0.1)
+    v = 1.0
+    pos = directed_positions(60, 300, D_um2_s=0.1, speed_um_s=v, frame_interval_s=DT, localization_sd_um=0.02,
+                             rng=rng)
+    out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
+    d = out[out.motion_class == "directed"]
+    assert len(d) >= 55
+    assert np.median(d.speed_um_s) == pytest.approx(v, rel=0.1)
+
+
+def test_bad_input_gets_a_clear_error():
+    with pytest.raises(InputError, match="tracks columns must be"):
+        classify_tracks(pd.DataFrame({"track": [0]}), frame_interval_s=DT)
+    rng = np.random.default_rng(0)
+    tracks = _tracks(brownian_positions(2, 20, D_um2_s=0.5, frame_interval_s=DT, rng=rng))
+    with pytest.raises(InputError, match="exposure_s must be between 0 and frame_interval_s"):
+        classify_tracks(tracks, frame_interval_s=DT, exposure_s=2 * DT)
+    with pytest.raises(ValueError, match="penalties keys must be"):
+        classify_tracks(tracks, frame_interval_s=DT, penalties={"brownian": 1.0})
+    with pytest.raises(InputError, match="track_classes must be"):
+        sample_motion(tracks, pd.DataFrame(), frame_interval_s=DT)
+
+
+# -------------------------------------------------------------------------------------------- samples
+def _brownian_sample(rng, n_tracks=30, x=None, drift=None):
+    x = rng.uniform(0, 3) if x is None else x
+    pos = brownian_positions(n_tracks, 120, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT,
+                             localization_sd_um=np.sqrt(x * 0.5 * DT), drift_um_s=drift, rng=rng)
+    return positions_to_tracks(pos, frame_interval_s=DT, lengths=rng.integers(60, 121, n_tracks))
+
+
+def _motion(tracks, drift=None):
+    cls = classify_tracks(tracks, frame_interval_s=DT, exposure_s=DT)
+    return sample_motion(tracks, cls, None, drift, frame_interval_s=DT, exposure_s=DT, n_boot=200, rng=0)
+
+
+def test_brownian_samples_are_rarely_flagged_subdiffusive():
+    # Target <= 5 % false `subdiffusive` (noise x up to 3): at most binom.ppf(0.999, 30, 0.05) of 30 samples.
+    rng = np.random.default_rng(9)
+    flags = [_motion(_brownian_sample(rng)).flags for _ in range(30)]
+    assert sum("subdiffusive" in f for f in flags) <= stats.binom.ppf(0.999, 30, 0.05)
+    assert sum("superdiffusive" in f for f in flags) <= stats.binom.ppf(0.999, 30, 0.05)
+
+
+def test_fbm_samples_with_alpha_0p6_are_flagged_subdiffusive():
+    # Target >= 95 % detection for alpha <= 0.7: at least binom.ppf(0.001, 20, 0.95) of 20 samples.
+    rng = np.random.default_rng(10)
+    hits = 0
+    for _ in range(20):
+        pos = fbm_positions(30, 120, alpha=0.6, K_um2_s_alpha=0.5, frame_interval_s=DT, exposure_s=DT,
+                            localization_sd_um=np.sqrt(rng.uniform(0, 3) * 0.5 * DT**0.6), rng=rng)
+        m = _motion(_tracks(pos))
+        hits += "subdiffusive" in m.flags
+        assert m.alpha_ci95[0] <= m.alpha <= m.alpha_ci95[1]
+    assert hits >= stats.binom.ppf(0.001, 20, 0.95)
+
+
+def test_drifting_sample_is_not_superdiffusive_after_correction():
+    rng = np.random.default_rng(11)
+    for _ in range(5):
+        tracks = _brownian_sample(rng, n_tracks=40, x=1.0, drift=[1.5, -1.0])
+        drift = estimate_drift(tracks, frame_interval_s=DT)
+        assert drift.significant and drift.safe_to_subtract
+        m = _motion(remove_drift(tracks, drift), drift)
+        assert "drift" in m.flags
+        assert "superdiffusive" not in m.flags
+        assert m.drift_corrected
+
+
+def test_ergodicity_breaking_of_brownian_tracks_equals_qian_ratio():
+    # EB = Var/mean² of TA-MSD over tracks equals Qian's ratio for Brownian motion (Qian et al. 1991;
+    # Metzler et al. 2014, Phys. Chem. Chem. Phys. 16:24128). 400 tracks: relative SE of EB ~ 7 %.
+    rng = np.random.default_rng(12)
+    pos = brownian_positions(400, 41, D_um2_s=0.5, frame_interval_s=DT, rng=rng)
+    m = _motion(_tracks(pos))
+    qian = ta_msd_relative_variance(2 * np.arange(41.0), 1, 40)  # Qian, n = 1: (4K + 2K)/(6K²) = 1/K
+    assert qian == pytest.approx(1 / 40)
+    assert m.ergodicity_breaking_brownian == pytest.approx(qian, rel=0.05)
+    assert m.ergodicity_breaking == pytest.approx(qian, rel=0.3)
+    assert "nonergodic" not in m.flags and "heterogeneous" not in m.flags
+
+
+def test_non_gaussian_parameter_is_zero_for_brownian_steps():
+    # Non-Gaussian parameter of Gaussian displacements is 0 (Rahman 1964; common practice).
+    rng = np.random.default_rng(13)
+    m = _motion(_brownian_sample(rng, n_tracks=60, x=1.0))
+    assert isinstance(m, SampleMotion)
+    assert abs(m.non_gaussian) < 4 * m.non_gaussian_se + 0.02
+    assert abs(m.non_gaussian_within) < 0.1
+
+
+def test_mixture_of_two_diffusion_coefficients_is_heterogeneous():
+    rng = np.random.default_rng(14)
+    D = np.where(np.arange(60) % 2 == 0, 0.1, 1.0)
+    pos = brownian_positions(60, 150, D_um2_s=D, frame_interval_s=DT, localization_sd_um=0.02, rng=rng)
+    m = _motion(_tracks(pos))
+    assert "heterogeneous" in m.flags
+    assert m.numbers["amplitude_spread"] > 0.5
+    assert m.non_gaussian > 0.3  # a mixture of Gaussians has positive excess kurtosis
+
+
+def test_few_tracks_are_flagged():
+    rng = np.random.default_rng(15)
+    m = _motion(_brownian_sample(rng, n_tracks=5))
+    assert "few_tracks" in m.flags
+    assert m.numbers["n_tracks_used"] <= 5
+    d = m.to_dict()
+    assert d["flags"] == list(m.flags) and "msd_comparison" in d
