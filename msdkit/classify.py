@@ -469,7 +469,22 @@ class SampleMotion:
         out["alpha_ci95"] = list(self.alpha_ci95)
         out["alpha_ea_minus_ta_ci99"] = list(self.alpha_ea_minus_ta_ci99)
         out["drift_um_s"] = list(self.drift_um_s)
-        return out
+        return _json_safe(out)
+
+
+def _json_safe(v):
+    """Numbers as plain Python (NaN and infinities as None), recursively."""
+    if isinstance(v, dict):
+        return {str(k): _json_safe(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_json_safe(x) for x in v]
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        return float(v) if np.isfinite(v) else None
+    return v
 
 
 def _refine_max(y: np.ndarray, grid: np.ndarray):
