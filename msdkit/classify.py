@@ -240,7 +240,7 @@ def _fit_all_uncached(tracks: pd.DataFrame, frame_interval_s: float, exposure_s:
         out["alpha_hi"][idx] = f.alpha_hi
         out["D"][idx] = f.brown_scale / (2.0 * dt)
         out["K"][idx] = f.fbm_scale / (2.0 * dt**f.alpha)
-        out["sigma"][idx] = np.sqrt(f.brown_noise / 2.0)
+        out["sigma"][idx] = np.sqrt(np.clip(f.brown_noise, 0.0, None) / 2.0)
         L2 = 6.0 * f.conf_plateau
         out["L"][idx] = np.sqrt(L2)
         out["tau"][idx] = f.conf_tau * dt

@@ -47,7 +47,13 @@ __all__ = [
 
 #: Grids of the profiled shape parameters.
 ALPHA_GRID = np.round(np.arange(0.05, 1.951, 0.05), 10)
-NOISE_RATIO_GRID = np.concatenate([[0.0], np.logspace(-3, 3, 25)])
+#: Noise ratio r (noise part of the per-axis MSD over the signal scale) on a grid uniform in u = asinh(r/0.01):
+#: fine near 0 and logarithmic beyond; slightly negative values (down to −0.25, where the spectrum stays
+#: positive) are allowed so that a small noise level is not biased by the r ≥ 0 boundary (the same reason an
+#: MSD fit lets its offset go negative); a negative value may remove at most half of the signal spectrum.
+_NOISE_U_STEP = 0.35
+NOISE_U_GRID = np.arange(np.arcsinh(-0.25 / 0.01), np.arcsinh(1e3 / 0.01) + 1e-9, _NOISE_U_STEP)
+NOISE_RATIO_GRID = 0.01 * np.sinh(NOISE_U_GRID)
 _N_TAU = 20
 #: Fraction of the steps tapered (half at each end) before the periodogram; see split_cosine_taper.
 TAPER_FRACTION = 0.2
@@ -274,32 +280,31 @@ def _bank(n_steps: int, exposure_ratio: float) -> _Bank:
 def _parabola(y0, y1, y2):
     """Vertex offset (in grid steps, clipped to ±1) and value of the parabola through three points."""
     den = y0 - 2.0 * y1 + y2
-    ok = den < -1e-12
+    ok = np.isfinite(den) & (den < -1e-12)
     safe = np.where(ok, den, -1.0)
-    off = np.where(ok, np.clip(0.5 * (y0 - y2) / safe, -1.0, 1.0), 0.0)
-    val = np.where(ok, y1 - 0.25 * (y0 - y2) * off, y1)
+    diff = np.where(ok, y0 - y2, 0.0)
+    off = np.where(ok, np.clip(0.5 * diff / safe, -1.0, 1.0), 0.0)
+    val = np.where(ok, y1 - 0.25 * diff * off, y1)
     return off, np.maximum(val, y1)
 
 
 def _profile_noise(ll: np.ndarray):
-    """Maximise ll (..., R) over the noise-ratio grid with parabolic refinement in log r.
+    """Maximise ll (..., R) over the noise-ratio grid with parabolic refinement in u = asinh(r/0.01).
 
-    Returns (max value, refined log10 r or −inf for r = 0, index).
+    Returns (max value, refined r, index).
     """
     R = ll.shape[-1]
     idx = np.argmax(ll, axis=-1)
     best = np.take_along_axis(ll, idx[..., None], -1)[..., 0]
-    logr = np.log10(NOISE_RATIO_GRID[1:])
-    step = logr[1] - logr[0]
-    interior = (idx >= 2) & (idx <= R - 2)
+    interior = (idx >= 1) & (idx <= R - 2)
     i0 = np.clip(idx - 1, 0, R - 1)
     i2 = np.clip(idx + 1, 0, R - 1)
     y0 = np.take_along_axis(ll, i0[..., None], -1)[..., 0]
     y2 = np.take_along_axis(ll, i2[..., None], -1)[..., 0]
     off, val = _parabola(y0, best, y2)
     best = np.where(interior, val, best)
-    lr = np.where(idx >= 1, logr[np.clip(idx - 1, 0, R - 2)], -np.inf) + np.where(interior, off * step, 0.0)
-    return best, lr, idx
+    u = NOISE_U_GRID[idx] + np.where(interior, off * _NOISE_U_STEP, 0.0)
+    return best, 0.01 * np.sinh(u), idx
 
 
 def _loglik_grid(P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int,
@@ -309,7 +314,10 @@ def _loglik_grid(P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.nda
     P: (T, F) periodograms summed over axes; shapes: (S, F). Returns ll (T, S, R) and scale (T, S, R).
     """
     spec = shapes[:, None, :] + NOISE_RATIO_GRID[None, :, None] * noise[None, None, :]  # (S, R, F)
-    spec = np.maximum(spec, 1e-300)
+    # (S, R): a negative noise ratio may remove at most half of the signal spectrum at any frequency (a
+    # spectrum near zero would let one small periodogram value dominate the likelihood)
+    valid = np.all(spec >= 0.5 * shapes[:, None, :], axis=-1)
+    spec = np.where(valid[..., None], spec, 1.0)
     W = w.sum()
     wq = w.copy()
     if drop_zero:
@@ -320,7 +328,7 @@ def _loglik_grid(P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.nda
     scale = (P @ Q.reshape(S * R, F).T).reshape(P.shape[0], S, R) / (n_axes * W)
     scale = np.maximum(scale, 1e-300)
     ll = -n_axes * (logdet[None] + W * np.log(scale) + W)
-    return ll, scale
+    return np.where(valid[None], ll, -np.inf), scale
 
 
 @dataclass(frozen=True)
@@ -473,9 +481,11 @@ def amplitude_at_alpha(steps: np.ndarray, *, exposure_ratio: float, alpha: float
     W = w.sum()
     shape = expected_periodogram(_blurred_power(np.arange(N + 1, dtype=float), float(alpha), e), bank.taper)
     ll, _ = _loglik_grid(P, w, shape[None, :], bank.noise, n_axes)
-    _, logr, _ = _profile_noise(ll[:, 0, :])
-    r = np.where(np.isfinite(logr), 10.0**logr, 0.0)
-    spec = np.maximum(shape[None, :] + r[:, None] * bank.noise[None, :], 1e-300)  # (T, F)
+    _, r, _ = _profile_noise(ll[:, 0, :])
+    spec = shape[None, :] + r[:, None] * bank.noise[None, :]  # (T, F)
+    bad = np.any(spec < 0.5 * shape[None, :], axis=1)
+    r = np.where(bad, NOISE_RATIO_GRID[np.argmax(ll[:, 0, :], axis=1)], r)
+    spec = np.maximum(shape[None, :] + r[:, None] * bank.noise[None, :], 1e-300)
     A = np.maximum(np.sum(w[None, :] * P / spec, axis=1) / (n_axes * W), 1e-300)
     S = A[:, None] * spec
     g1 = A[:, None] * shape[None, :] / S  # ∂ log S / ∂ log A
@@ -484,7 +494,7 @@ def amplitude_at_alpha(steps: np.ndarray, *, exposure_ratio: float, alpha: float
     F12 = n_axes * np.sum(w * g1 * g2, axis=1)
     F22 = n_axes * np.sum(w * g2 * g2, axis=1)
     det = F11 * F22 - F12**2
-    var = np.where((r > 0) & (det > 0), F22 / np.where(det > 0, det, 1.0), 1.0 / F11)
+    var = np.where(det > 0, F22 / np.where(det > 0, det, 1.0), 1.0 / F11)
     var = var * N * np.sum(bank.taper**4)  # variance inflation of a tapered periodogram
     return np.log(A), np.sqrt(var)
 
