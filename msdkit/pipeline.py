@@ -244,6 +244,8 @@ def movie_to_tracks(
         sample = np.stack([stack.read_frames(int(i), int(i) + 1)[0] for i in sample_idx])
         settings = detect.choose_detection_settings(
             sample, spot_diameter_px=det.spot_diameter_px, min_mass=det.min_mass,
+            false_spots_per_frame=det.false_spots_per_frame, max_precision_px=det.max_precision_px,
+            max_sigma_px=det.max_sigma_px,
         )
         chunks = []
         done = 0
