@@ -27,9 +27,12 @@ import hashlib
 import json
 import logging
 import math
+import threading
 import time
 import traceback
-from collections.abc import Callable, Iterable
+import warnings
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -46,6 +49,7 @@ DONE_FILE = ".done.json"
 ERROR_FILE = "error.log"
 _STACK_SUFFIXES = (".ome.tiff", ".ome.tif", ".csv.gz", ".tsv.gz")
 _MAX_ERROR_CHARS = 400
+_TAIL_COLUMNS = ("n_warnings", "input", "run_s", "resumed")
 
 #: Signature of the per-input function: ``process(input_path, cfg, stack_dir, *, stack_name, progress)``.
 ProcessInput = Callable[..., Any]
@@ -67,10 +71,11 @@ class StackRow:
     input_path: str = ""
     run_s: float = math.nan
     resumed: bool = False
+    n_warnings: int = 0
     extra: dict[str, Any] = field(default_factory=dict)
 
     def record(self) -> dict[str, Any]:
-        """Flat dict for the summary table: contract columns, extra numbers, then input, run_s, resumed."""
+        """Flat dict for the summary table: contract columns, extra numbers, then the tail columns."""
         failed = self.status != "ok"
         rec: dict[str, Any] = {
             "stack": self.stack,
@@ -84,7 +89,8 @@ class StackRow:
         }
         for k, v in self.extra.items():
             rec.setdefault(k, v)
-        rec.update(input=self.input_path, run_s=self.run_s, resumed=self.resumed)
+        rec.update(n_warnings=int(self.n_warnings), input=self.input_path, run_s=self.run_s,
+                   resumed=self.resumed)
         return rec
 
     def to_json(self) -> dict[str, Any]:
@@ -107,7 +113,7 @@ class StackRow:
 
 
 def summary_table(rows: Iterable[StackRow]):
-    """Build the batch summary table (columns: the contract's, then extras, input, run_s, resumed)."""
+    """Build the batch summary table: the contract's columns, extras, n_warnings, input, run_s, resumed."""
     import numpy as np
     import pandas as pd
 
@@ -116,13 +122,14 @@ def summary_table(rows: Iterable[StackRow]):
     records = [r.record() for r in rows]
     cols = list(BATCH_SUMMARY_COLUMNS)
     for rec in records:
-        cols += [k for k in rec if k not in cols and k not in ("input", "run_s", "resumed")]
-    cols += ["input", "run_s", "resumed"]
+        cols += [k for k in rec if k not in cols and k not in _TAIL_COLUMNS]
+    cols += list(_TAIL_COLUMNS)
     df = pd.DataFrame.from_records(records, columns=cols)
     df["n_tracks"] = pd.array([rec["n_tracks"] for rec in records], dtype="Int64")
     for c in ("D_um2_s", "alpha", "radius_nm", "run_s"):
         df[c] = pd.to_numeric(df[c], errors="coerce").astype("float64")
-    for c in cols[len(BATCH_SUMMARY_COLUMNS):-3]:  # extra numbers: keep whole numbers whole despite gaps
+    # Extra numbers: keep whole numbers whole (nullable integers) despite the gaps of failed rows.
+    for c in cols[len(BATCH_SUMMARY_COLUMNS):-len(_TAIL_COLUMNS)]:
         vals = [rec.get(c) for rec in records]
         present = [v for v in vals if v is not None]
         if present and all(isinstance(v, int | np.integer) and not isinstance(v, bool) for v in present):
@@ -366,11 +373,14 @@ def run_task(task: StackTask, report: Callable[[str, int, int], None] | None = N
             if report is not None:
                 def frames_cb(done: int, total: int, _stack=task.stack) -> None:
                     report(_stack, done, total)
-            outcome = process(Path(task.input_path), task.cfg, stack_dir, stack_name=task.stack,
-                              progress=frames_cb)
+            with _warnings_to_log(task.stack) as caught:
+                outcome = process(Path(task.input_path), task.cfg, stack_dir, stack_name=task.stack,
+                                  progress=frames_cb)
             row = _row_from_outcome(outcome, task, time.perf_counter() - t0)
+            row = dataclasses.replace(row, n_warnings=len(caught))
             if row.status != "ok":
-                return failed_row(task, row.error or "the input could not be analysed", run_s=row.run_s)
+                message = _name_input(task, row.error or "the input could not be analysed")
+                return failed_row(task, message, run_s=row.run_s)
             done = {
                 "format": 1,
                 "stack": task.stack,
@@ -385,8 +395,38 @@ def run_task(task: StackTask, report: Callable[[str, int, int], None] | None = N
             write_json_atomic(done, stack_dir / DONE_FILE)
             return row
         except (Exception, SystemExit) as exc:
-            return failed_row(task, one_line_error(exc), run_s=time.perf_counter() - t0,
+            return failed_row(task, _name_input(task, one_line_error(exc)), run_s=time.perf_counter() - t0,
                               tb=traceback.format_exc())
+
+
+def _name_input(task: StackTask, message: str) -> str:
+    """Start an error message with the input's file name unless it already names it."""
+    name = Path(task.input_path).name
+    return message if name in message else f"{name}: {message}"
+
+
+@contextmanager
+def _warnings_to_log(stack: str) -> Iterator[list]:
+    """Record warnings raised while one input is processed and write each distinct one to the log.
+
+    A warning must never fail an input, whatever the caller's warning filters say. Only done on the main
+    thread: warning filters are process-wide, so threads (a multithreaded Dask worker) leave them alone.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield []
+        return
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield caught
+        finally:
+            seen: dict[tuple, int] = {}
+            for w in caught:
+                key = (w.category.__name__, str(w.message), w.filename, w.lineno)
+                seen[key] = seen.get(key, 0) + 1
+            for (cat, msg, filename, lineno), n in seen.items():
+                times = f" ({n} times)" if n > 1 else ""
+                log.warning("%s: %s: %s%s [%s:%d]", stack, cat, msg, times, Path(filename).name, lineno)
 
 
 def _crash_row(task: StackTask, message: str) -> StackRow:
