@@ -197,6 +197,12 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     if kind == "one_step":
         b0, a0 = _pooled_ml(*_pooled_modes(modes, usable)[:2], n_dims)
         rho = a0 / b0 if b0 > 0 else 0.0
+    else:
+        b0, a0 = dif.covariance_estimate(st.sum_sq[usable].sum(), st.n_steps[usable].sum(),
+                                         st.sum_cross[usable].sum(), st.n_pairs[usable].sum(), n_dims=n_dims, R=R)
+    # intervals take the sample's pooled localisation variance (precise) rather than each track's own
+    # (noisy at small N, which would make the intervals too wide or too narrow)
+    s_pool = max(float(a0 + R * b0), 0.0) if np.isfinite(a0 + R * b0) else 0.0
     n_tr = st.ids.size
     out = {k: np.full(n_tr, np.nan) for k in ("b", "a", "lo", "hi")}
     first = np.concatenate([[0], np.cumsum(st.n_steps)[:-1]])
@@ -213,7 +219,7 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
             b = (c * S).sum(1) / n_dims
             a = -((w * (1.0 - L / 2.0) * S).sum(1) / (n_dims * n2[:, 0]))
         m2, m3 = dif.weighted_chi2_moments(c, L, w, R=R)
-        lo, hi = dif.skewed_interval(b, np.maximum(a + R * b, 0.0), m2, m3, n_dims=n_dims)
+        lo, hi = dif.skewed_interval(b, s_pool, m2, m3, n_dims=n_dims)
         out["b"][idx], out["a"][idx], out["lo"][idx], out["hi"][idx] = b, a, lo, hi
     return out["b"], out["a"], out["lo"], out["hi"]
 
@@ -270,13 +276,20 @@ def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
 
 
 def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
-    """Per-track fit of (K, alpha) with the localisation variance fixed at s_shared."""
+    """Per-track fit of (K, alpha) with the localisation variance fixed at s_shared.
+
+    Generalised least squares weighted first by the TA-MSD covariance of Brownian motion with the track's
+    mean slope, then (twice) by the covariance of the fitted power law itself (fractional Brownian motion
+    with blur and noise, :func:`msdkit.estimators.anomalous.power_law_msd_covariance`), which also gives
+    alpha's standard error.
+    """
     n_tr = st.ids.size
     alpha = np.full(n_tr, np.nan)
     se = np.full(n_tr, np.nan)
     K = np.full(n_tr, np.nan)
     n_a = _alpha_lag_count(st.n_steps)
     usable = (st.n_steps >= 4) & np.isfinite(s_shared)
+    blur = exposure_s / dt
     for na in np.unique(n_a[usable]):
         lags = an.log_lags(int(na), ALPHA_N_LAGS)
         idx = np.flatnonzero(usable & (n_a == na))
@@ -285,22 +298,55 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
         idx, Y = idx[good], Y[good]
         if idx.size == 0:
             continue
-        # Brownian covariance with the average slope over the fitted lags (weights only)
-        b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
-        a_t = s_shared - R * b_t
-        C = np.empty((idx.size, lags.size, lags.size))
         ns = np.maximum(st.n_steps[idx], int(lags[-1]))
+        s_arr = np.full(idx.size, s_shared)
+        b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
+        C = np.empty((idx.size, lags.size, lags.size))
         for N in np.unique(ns):
             sel = ns == N
-            C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], a_t[sel], n_dims)
-        C += np.eye(lags.size)[None] * 1e-12 * np.abs(C).max(axis=(1, 2))[:, None, None]
-        Cinv = np.linalg.inv(C)
-        theta, cov, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s,
-                                          s=np.full(idx.size, s_shared))
+            C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], s_shared - R * b_t[sel], n_dims)
+        theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr)
+        for _pass in range(3):
+            th_a = np.clip(theta[:, 1], *an.ALPHA_BOUNDS)
+            K_frame = np.exp(theta[:, 0]) * dt**th_a
+            for N in np.unique(ns):
+                sel = ns == N
+                C[sel] = an.power_law_msd_covariance(int(N), lags, K_frame[sel], th_a[sel], s_shared,
+                                                     blur=blur, n_dims=n_dims)
+            Cinv = _stable_inverse(C)
+            if _pass < 2:
+                theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
+                                                theta0=theta)
+        _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
+        H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            var_alpha = H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
         alpha[idx] = np.where(ok, theta[:, 1], np.nan)
-        se[idx] = np.where(ok, np.sqrt(np.maximum(cov[:, 1, 1], 0.0)), np.nan)
+        se[idx] = np.where(ok & (var_alpha > 0), np.sqrt(np.abs(var_alpha)), np.nan)
         K[idx] = np.where(ok, np.exp(theta[:, 0]), np.nan)
     return alpha, se, K
+
+
+def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims):
+    """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted)."""
+    y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
+    if sigma_um is None:
+        n_max = int(np.clip(np.median(st.n_steps[usable]) // 3 if usable.any() else 3, 3, ALPHA_MAX_LAG))
+        res = _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e, n_dims=n_dims, rng=0,
+                                n_boot=0, lags=an.log_lags(n_max, ALPHA_N_LAGS))
+        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
+    else:
+        s_shared = float(sigma_um) ** 2
+    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
+    a_lo, a_hi = an.alpha_interval(alpha, a_se)
+    return alpha, a_lo, a_hi, K
+
+
+def _stable_inverse(C):
+    """Inverse of a stack of covariance matrices, regularised by a relative 1e-10 ridge."""
+    ridge = 1e-10 * np.trace(C, axis1=1, axis2=2) / C.shape[1]
+    C = C + ridge[:, None, None] * np.eye(C.shape[1])[None]
+    return np.linalg.inv(C)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -315,6 +361,7 @@ def fit_tracks(
     n_dims: int = 2,
     method: str = "auto",
     sigma_um: float | None = None,
+    fit_alpha: bool = True,
 ) -> pd.DataFrame:
     """Fit D, the localisation error and the anomalous exponent of every track.
 
@@ -332,6 +379,8 @@ def fit_tracks(
         The sample's shared localisation error, used to stabilise each track's anomalous exponent. By
         default it is estimated from the ensemble MSD of the tracks given (power-law fit with offset). It does
         not enter the per-track D, which carries its own localisation error.
+    fit_alpha : bool, default=True
+        False skips the anomalous exponent (its columns are NaN), which saves most of the time.
 
     Returns
     -------
@@ -344,10 +393,13 @@ def fit_tracks(
 
     Notes
     -----
-    D intervals are score-type 95 % intervals from each estimator's known variance at the hypothesised D
-    (closed form for the covariance estimator, the exact MSD covariance for the MSD fit, the Fisher
-    information for maximum likelihood); the upper end is +inf when a track is too short and noisy to bound
-    D. The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
+    D intervals are 95 % intervals that invert the estimator's known distribution at each hypothesised D:
+    for the covariance and one-step estimators, which are fixed-weight sums of independent chi-square
+    modes, the exact first three cumulants give a skewness-aware (shifted gamma) quantile, with the sample's
+    pooled localisation variance; for the MSD fit and the full likelihood a score-type interval from the
+    exact MSD covariance or the Fisher information. The upper end is +inf when a track is too short and
+    noisy to bound D. Intervals assume the track shares the sample's localisation error; in samples where
+    it varies strongly between tracks, single-track coverage departs from 95 %. The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
     the model 2d [K g_alpha(t) + sigma^2] including blur (:func:`msdkit.estimators.anomalous.blurred_power_law`)
     by generalised least squares, with sigma fixed at the shared value.
 
@@ -395,16 +447,10 @@ def fit_tracks(
     D = np.where(usable, b * to_D, np.nan)
 
     # anomalous exponent with a shared localisation variance
-    y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
-    if sigma_um is None:
-        n_max = int(np.clip(np.median(st.n_steps[usable]) // 3 if usable.any() else 3, 3, ALPHA_MAX_LAG))
-        res = _sample_power_law(y_a, np_a, dt=dt, exposure_s=t_e, n_dims=n_dims, rng=0, n_boot=0,
-                                lags=an.log_lags(n_max, ALPHA_N_LAGS))
-        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
+    if not fit_alpha:
+        alpha = a_lo = a_hi = K = np.full(n_tr, np.nan)
     else:
-        s_shared = float(sigma_um) ** 2
-    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
-    a_lo, a_hi = an.alpha_interval(alpha, a_se)
+        alpha, a_lo, a_hi, K = _alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R, n_dims=n_dims)
 
     with np.errstate(invalid="ignore", divide="ignore"):
         x_red = np.where(usable, 2.0 * s / b, np.nan)

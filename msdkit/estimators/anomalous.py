@@ -13,6 +13,8 @@ T. Savin & P. S. Doyle, Biophys. J. 88, 623 (2005), doi:10.1529/biophysj.104.042
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 
 from .diffusion import Z95, msd_covariance_terms
@@ -46,13 +48,56 @@ def log_lags(n_max: int, n_lags: int = 12) -> np.ndarray:
     return np.unique(np.round(np.geomspace(1, n_max, min(n_lags, n_max))).astype(int))
 
 
-def _model(theta, t, s, exposure_s):
+class _Lags:
+    """Logarithms of the lag times (and of t +- t_E) computed once per set of lags."""
+
+    def __init__(self, t, exposure_s: float):
+        self.t = np.asarray(t, float)
+        self.T = float(exposure_s)
+        self.lt = np.log(self.t)
+        if self.T > 0:
+            self.u = self.T / self.t
+            self.series = self.u < 0.01
+            self.lp = np.log(self.t + self.T)
+            diff = self.t - self.T
+            self.zero = diff <= 0
+            self.lm = np.log(np.where(self.zero, 1.0, diff))
+            self.lT = np.log(self.T)
+
+    def g_dg(self, alpha):
+        """g_alpha(t) and d g / d alpha for alpha of shape (n_rows, 1)."""
+        a = alpha
+        ta = np.exp(a * self.lt)
+        if self.T <= 0:
+            return ta, ta * self.lt
+        T, u = self.T, self.u
+        c = (a + 1.0) * (a + 2.0)
+        dc = 2.0 * a + 3.0
+        pp = np.exp((a + 2.0) * self.lp)
+        pm = np.where(self.zero, 0.0, np.exp((a + 2.0) * self.lm))
+        p0 = np.exp((a + 2.0) * self.lt)
+        num = pp + pm - 2.0 * p0
+        dnum = pp * self.lp + np.where(self.zero, 0.0, pm * self.lm) - 2.0 * p0 * self.lt
+        direct = num / (T * T * c)
+        d_direct = dnum / (T * T * c) - direct * dc / c
+        A = a * (a - 1) / 12.0
+        B = a * (a - 1) * (a - 2) * (a - 3) / 360.0
+        dA = (2 * a - 1) / 12.0
+        dB = (4 * a**3 - 18 * a**2 + 22 * a - 6) / 360.0
+        ser = ta * (1.0 + A * u * u + B * u**4)
+        d_ser = ser * self.lt + ta * (dA * u * u + dB * u**4)
+        Ta = np.exp(a * self.lT)
+        tail = 2.0 * Ta / c
+        d_tail = tail * self.lT - tail * dc / c
+        g = np.where(self.series, ser, direct) - tail
+        dg = np.where(self.series, d_ser, d_direct) - d_tail
+        return g, dg
+
+
+def _model(theta, lags: _Lags, s):
     """Per-axis MSD and its Jacobian in (ln K, alpha[, s]) for rows of theta."""
-    lnK, alpha = theta[:, 0:1], theta[:, 1:2]
-    g = blurred_power_law(t[None, :] if t.ndim == 1 else t, alpha, exposure_s)
-    h = 1e-5
-    dg = (blurred_power_law(t, alpha + h, exposure_s) - blurred_power_law(t, alpha - h, exposure_s)) / (2 * h)
-    K = np.exp(lnK)
+    g, dg = lags.g_dg(theta[:, 1:2])
+    K = np.exp(theta[:, 0:1])
     mu = 2 * K * g + 2 * s
     J = [2 * K * g, 2 * K * dg]
     if theta.shape[1] == 3:
@@ -74,68 +119,145 @@ def gls_power_law(y, t, Cinv, *, exposure_s: float, s=None, theta0=None, n_iter:
     Returns
     -------
     theta : (n_rows, 2 or 3) ln K, alpha[, s];  cov : inverse of J^T C^-1 J;  ok : finite and converged.
+
+    Notes
+    -----
+    Gauss-Newton with step halving on the generalised residual sum of squares; alpha is kept in
+    :data:`ALPHA_BOUNDS`.
     """
     y = np.asarray(y, float)
     n = y.shape[0]
     fit_s = s is None
-    if Cinv.ndim == 2:
-        Cinv = np.broadcast_to(Cinv, (n, *Cinv.shape))
+    lags = _Lags(t, exposure_s)
+    Cinv = np.broadcast_to(Cinv, (n, *Cinv.shape[-2:])) if Cinv.ndim == 2 else Cinv
     if theta0 is None:
         base = np.zeros(n) if fit_s else np.asarray(s, float)
-        z = np.log(np.maximum(y - 2 * base[:, None], 1e-12 * np.abs(y).max(axis=1, keepdims=True) + 1e-300))
+        floor = 1e-12 * np.abs(y).max(axis=1, keepdims=True) + 1e-300
+        z = np.log(np.maximum(y - 2 * base[:, None], floor))
         lt = np.log(t)
         ltc = lt - lt.mean()
         alpha0 = np.clip((z * ltc).sum(1) / (ltc * ltc).sum(), 0.1, 1.9)
         lnK0 = (z.mean(1) - alpha0 * lt.mean()) - np.log(2.0)
-        theta = np.stack([lnK0, alpha0] + ([np.maximum(y[:, 0] * 0.0, 0.0)] if fit_s else []), 1)
+        theta = np.stack([lnK0, alpha0] + ([np.zeros(n)] if fit_s else []), 1)
     else:
         theta = np.array(theta0, float)
-    s_row = None if fit_s else np.asarray(s, float)[:, None]
+    s_all = None if fit_s else np.asarray(s, float)[:, None]
+
+    def mu_J(th, rows):
+        return _model(th, lags, th[:, 2:3] if fit_s else s_all[rows])
+
+    def cost(th, rows):
+        m, _ = mu_J(th, rows)
+        r = y[rows] - m
+        return np.einsum("nl,nlm,nm->n", r, Cinv[rows], r)
+
     ok = np.zeros(n, bool)
+    active = np.arange(n)
     for _ in range(n_iter):
-        mu, J = _model(theta, t, theta[:, 2:3] if fit_s else s_row, exposure_s)
-        r = y - mu
-        JtW = np.einsum("nlp,nlm->npm", J, Cinv)
+        if active.size == 0:
+            break
+        th = theta[active]
+        mu, J = mu_J(th, active)
+        r = y[active] - mu
+        W = Cinv[active]
+        JtW = np.einsum("nlp,nlm->npm", J, W)
         H = JtW @ J
         grad = np.einsum("npm,nm->np", JtW, r)
+        H = H + np.eye(H.shape[1]) * (1e-12 * np.abs(H).max(axis=(1, 2)) + 1e-300)[:, None, None]
         try:
-            step = np.linalg.solve(H + 1e-12 * np.eye(H.shape[1]) * np.abs(H).max(axis=(1, 2))[:, None, None],
-                                   grad[..., None])[..., 0]
+            step = np.linalg.solve(H, grad[..., None])[..., 0]
         except np.linalg.LinAlgError:
-            step = np.zeros_like(theta)
+            step = np.zeros_like(th)
         step = np.where(np.isfinite(step), step, 0.0)
         step[:, 0] = np.clip(step[:, 0], -2.0, 2.0)
         step[:, 1] = np.clip(step[:, 1], -0.5, 0.5)
-        new = theta + step
+        new = th + step
         new[:, 1] = np.clip(new[:, 1], *ALPHA_BOUNDS)
-        # keep the step only if the weighted residual does not grow (halve otherwise)
-        def cost(th):
-            m, _ = _model(th, t, th[:, 2:3] if fit_s else s_row, exposure_s)
-            rr = y - m
-            return np.einsum("nl,nlm,nm->n", rr, Cinv, rr)
-        c0, c1 = cost(theta), cost(new)
-        for _h in range(10):
-            worse = ~(c1 <= c0 * (1 + 1e-12))
-            if not worse.any():
+        c0 = np.einsum("nl,nlm,nm->n", r, W, r)
+        c1 = cost(new, active)
+        for _h in range(12):
+            worse = np.flatnonzero(~(c1 <= c0 * (1 + 1e-12)))
+            if worse.size == 0:
                 break
-            new[worse] = 0.5 * (new[worse] + theta[worse])
-            c1[worse] = cost(new)[worse]
+            new[worse] = 0.5 * (new[worse] + th[worse])
+            c1[worse] = cost(new[worse], active[worse])
         worse = ~(c1 <= c0 * (1 + 1e-12))
-        new[worse] = theta[worse]
-        done = np.all(np.abs(new - theta) <= 1e-8 * (1 + np.abs(theta)), axis=1)
-        theta = new
-        ok |= done
-        if done.all():
-            break
-    mu, J = _model(theta, t, theta[:, 2:3] if fit_s else s_row, exposure_s)
+        new[worse] = th[worse]
+        done = np.all(np.abs(new - th) <= 1e-7 * (1 + np.abs(th)), axis=1) | worse
+        theta[active] = new
+        ok[active[done]] = True
+        active = active[~done]
+    _, J = mu_J(theta, np.arange(n))
     H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
-    with np.errstate(invalid="ignore"):
-        try:
-            cov = np.linalg.inv(H)
-        except np.linalg.LinAlgError:
-            cov = np.full_like(H, np.nan)
+    cov = np.full_like(H, np.nan)
+    good = np.all(np.isfinite(H), axis=(1, 2)) & (np.abs(np.linalg.det(H)) > 0)
+    if good.any():
+        cov[good] = np.linalg.inv(H[good])
     ok &= np.all(np.isfinite(theta), axis=1)
     return theta, cov, ok
+
+
+_ALPHA_GRID = np.round(np.arange(0.0, 2.55, 0.1), 10)
+
+
+@lru_cache(maxsize=8192)
+def _power_law_cov_terms(n_steps: int, lags: tuple, blur: float, grid_index: int):
+    """TA-MSD covariance terms at lags for V(t) = 2 K g_alpha(t) + 2 s, in frame units, alpha on a grid.
+
+    Returns (A, B): per axis Cov(M_n, M_m) = K^2 A + 2 K s B + s^2 Q_aa (Q_aa from
+    :func:`msdkit.estimators.diffusion.msd_covariance_terms`). Uses C(delta) = [V(n - delta) + V(delta + m)
+    - V(n - m - delta) - V(delta)]/2 over every offset delta (fractional Brownian motion has long-range
+    correlations) and Cov = 2/(K_n K_m) sum_delta count(delta) C^2 for Gaussian data with stationary
+    increments.
+    """
+    alpha = max(_ALPHA_GRID[grid_index], 1e-3)
+    L = np.asarray(lags)
+    Kw = n_steps - L + 1
+    k = np.arange(0, n_steps + int(L.max()) + 2)
+    G = np.zeros(k.size)
+    if k.size > 1:
+        G[1:] = 2.0 * _Lags(k[1:].astype(float), blur).g_dg(np.array([[alpha]]))[0][0]
+    delta = np.arange(-(n_steps + 1), n_steps + 2)
+    nn, mm, dd = L[:, None, None], L[None, :, None], delta[None, None, :]
+
+    def V(tau):
+        return G[np.abs(tau)]
+
+    def S(tau):
+        return (tau != 0).astype(float) * 2.0
+
+    Cg = 0.5 * (V(nn - dd) + V(dd + mm) - V(nn - mm - dd) - V(dd))
+    Cs = 0.5 * (S(nn - dd) + S(dd + mm) - S(nn - mm - dd) - S(dd))
+    Kn, Km = Kw[:, None, None], Kw[None, :, None]
+    count = np.maximum(0, np.minimum(Kn, Km - dd) - np.maximum(0, -dd)).astype(float)
+    scale = 2.0 / (Kw[:, None] * Kw[None, :])
+    return scale * np.sum(count * Cg * Cg, axis=2), scale * np.sum(count * Cg * Cs, axis=2)
+
+
+def power_law_msd_covariance(n_steps: int, lags, K_frame, alpha, s, *, blur: float, n_dims: int):
+    """Covariance of the per-axis-averaged TA-MSD at lags for fractional Brownian motion with blur and noise.
+
+    K_frame is K dt^alpha (frame units); alpha is interpolated linearly on a 0.1 grid. Returns an array
+    (n_rows, n_lags, n_lags).
+    """
+    lags_t = tuple(int(v) for v in lags)
+    _, _, Qaa = msd_covariance_terms(int(n_steps), int(max(lags_t)))
+    idx = np.asarray(lags_t) - 1
+    Qs = Qaa[np.ix_(idx, idx)]
+    pos = np.clip(np.asarray(alpha, float), 0.0, 2.5) / 0.1
+    i0 = np.clip(np.floor(pos).astype(int), 0, _ALPHA_GRID.size - 2)
+    f = (pos - i0)[:, None, None]
+    out = np.empty((pos.size, len(lags_t), len(lags_t)))
+    for i in np.unique(i0):
+        sel = i0 == i
+        A0, B0 = _power_law_cov_terms(int(n_steps), lags_t, float(blur), int(i))
+        A1, B1 = _power_law_cov_terms(int(n_steps), lags_t, float(blur), int(i) + 1)
+        A = (1 - f[sel]) * A0 + f[sel] * A1
+        B = (1 - f[sel]) * B0 + f[sel] * B1
+        Kf = np.asarray(K_frame, float)[sel][:, None, None]
+        ss = np.broadcast_to(np.asarray(s, float), pos.shape)[sel][:, None, None]
+        out[sel] = (Kf * Kf * A + 2 * Kf * ss * B + ss * ss * Qs) / n_dims
+    return out
 
 
 def brownian_msd_covariance(n_steps, lags, b, a, n_dims: int):
