@@ -61,23 +61,48 @@ def simulate_sample(kind: str, rng: np.random.Generator):
     D = float(np.exp(rng.uniform(np.log(0.05), np.log(2.0))))
     truth = {"x": x}
     if kind == "brownian":
-        p = brownian_positions(n, 300, D_um2_s=D, frame_interval_s=DT, exposure_s=e,
-                               localization_sd_um=np.sqrt(x * D * DT), rng=rng)
+        p = brownian_positions(
+            n,
+            300,
+            D_um2_s=D,
+            frame_interval_s=DT,
+            exposure_s=e,
+            localization_sd_um=np.sqrt(x * D * DT),
+            rng=rng,
+        )
     elif kind == "fbm":
         a = rng.uniform(0.2, 0.7)
         truth["alpha"] = a
-        p = fbm_positions(n, 300, alpha=a, K_um2_s_alpha=D, frame_interval_s=DT, exposure_s=e,
-                          localization_sd_um=np.sqrt(x * D * DT**a), rng=rng)
+        p = fbm_positions(
+            n,
+            300,
+            alpha=a,
+            K_um2_s_alpha=D,
+            frame_interval_s=DT,
+            exposure_s=e,
+            localization_sd_um=np.sqrt(x * D * DT**a),
+            rng=rng,
+        )
     elif kind == "drift":
         speed = rng.uniform(0.5, 3.0) * np.sqrt(D / (100 * DT))  # drift over 100 frames: 0.5-3 x diffusion
         ang = rng.uniform(0, 2 * np.pi)
         v = speed * np.array([np.cos(ang), np.sin(ang)])
         truth["speed_um_s"] = speed
-        p = brownian_positions(n, 300, D_um2_s=D, frame_interval_s=DT, exposure_s=e,
-                               localization_sd_um=np.sqrt(x * D * DT), drift_um_s=v, rng=rng)
+        p = brownian_positions(
+            n,
+            300,
+            D_um2_s=D,
+            frame_interval_s=DT,
+            exposure_s=e,
+            localization_sd_um=np.sqrt(x * D * DT),
+            drift_um_s=v,
+            rng=rng,
+        )
     else:
         raise ValueError(kind)
-    tracks = positions_to_tracks(p, frame_interval_s=DT, lengths=lengths, first_frames=rng.integers(0, 200, n))
+    tracks = positions_to_tracks(
+        p, frame_interval_s=DT, lengths=lengths, first_frames=rng.integers(0, 200, n)
+    )
     return tracks, e, truth
 
 
@@ -89,13 +114,30 @@ def run_sample_flags(n_samples: int, rng: np.random.Generator) -> pd.DataFrame:
             drift = estimate_drift(tracks, frame_interval_s=DT)
             corrected = remove_drift(tracks, drift) if drift.safe_to_subtract else tracks
             cls = classify_tracks(corrected, frame_interval_s=DT, exposure_s=e)
-            m = sample_motion(corrected, cls, None, drift, frame_interval_s=DT, exposure_s=e, n_boot=200, rng=rng)
-            row = {"condition": kind, "alpha": m.alpha, "alpha_lo": m.alpha_ci95[0], "alpha_hi": m.alpha_ci95[1],
-                   **{f"flag_{f}": True for f in m.flags}, **truth}
+            m = sample_motion(
+                corrected, cls, None, drift, frame_interval_s=DT, exposure_s=e, n_boot=200, rng=rng
+            )
+            row = {
+                "condition": kind,
+                "alpha": m.alpha,
+                "alpha_lo": m.alpha_ci95[0],
+                "alpha_hi": m.alpha_ci95[1],
+                **{f"flag_{f}": True for f in m.flags},
+                **truth,
+            }
             if kind == "drift":  # the same sample without correction, for contrast
                 cls0 = classify_tracks(tracks, frame_interval_s=DT, exposure_s=e)
-                m0 = sample_motion(tracks, cls0, None, drift, frame_interval_s=DT, exposure_s=e,
-                                   drift_corrected=False, n_boot=200, rng=rng)
+                m0 = sample_motion(
+                    tracks,
+                    cls0,
+                    None,
+                    drift,
+                    frame_interval_s=DT,
+                    exposure_s=e,
+                    drift_corrected=False,
+                    n_boot=200,
+                    rng=rng,
+                )
                 row["uncorrected_superdiffusive"] = "superdiffusive" in m0.flags
             rows.append(row)
     df = pd.DataFrame(rows)
@@ -110,18 +152,28 @@ def report_sample_flags(df: pd.DataFrame) -> None:
     print("| condition | samples | " + " | ".join(f[5:] for f in flags) + " | mean alpha |")
     print("|---|---|" + "---|" * len(flags) + "---|")
     for cond, g in df.groupby("condition", sort=False):
-        print(f"| {cond} | {len(g)} | " + " | ".join(f"{g[f].mean():.3f}" for f in flags)
-              + f" | {g['alpha'].mean():.3f} |")
+        print(
+            f"| {cond} | {len(g)} | "
+            + " | ".join(f"{g[f].mean():.3f}" for f in flags)
+            + f" | {g['alpha'].mean():.3f} |"
+        )
     b = df[df.condition == "brownian"]
     f = df[df.condition == "fbm"]
     d = df[df.condition == "drift"]
-    print(f"\nfalse `subdiffusive` on Brownian: {b['flag_subdiffusive'].mean():.3f} (target <= 0.05; "
-          f"x >= 2: {b.loc[b.x >= 2, 'flag_subdiffusive'].mean():.3f})")
-    print(f"`subdiffusive` detection on FBM alpha 0.2-0.7: {f['flag_subdiffusive'].mean():.3f} (target >= 0.95; "
-          f"alpha >= 0.6: {f.loc[f.alpha >= 0.6, 'flag_subdiffusive'].mean():.3f})")
+    print(
+        f"\nfalse `subdiffusive` on Brownian: {b['flag_subdiffusive'].mean():.3f} (target <= 0.05; "
+        f"x >= 2: {b.loc[b.x >= 2, 'flag_subdiffusive'].mean():.3f})"
+    )
+    print(
+        f"`subdiffusive` detection on FBM alpha 0.2-0.7: {f['flag_subdiffusive'].mean():.3f} "
+        "(target >= 0.95; "
+        f"alpha >= 0.6: {f.loc[f.alpha >= 0.6, 'flag_subdiffusive'].mean():.3f})"
+    )
     sup = d["flag_superdiffusive"].mean() if "flag_superdiffusive" in d else 0.0
-    print(f"drifting Brownian: `superdiffusive` after drift correction {sup:.3f}, without correction "
-          f"{d['uncorrected_superdiffusive'].mean():.3f}; `drift` flag {d['flag_drift'].mean():.3f}")
+    print(
+        f"drifting Brownian: `superdiffusive` after drift correction {sup:.3f}, without correction "
+        f"{d['uncorrected_superdiffusive'].mean():.3f}; `drift` flag {d['flag_drift'].mean():.3f}"
+    )
 
 
 # ---------------------------------------------------------------------------------------- per-track classes
@@ -137,16 +189,29 @@ def simulate_class(cls: str, n: int, N: int, e: float, rng: np.random.Generator)
         elif cls in ("subdiffusive", "superdiffusive"):
             a = rng.uniform(0.2, 0.7) if cls == "subdiffusive" else rng.uniform(1.3, 1.8)
             alpha[i] = a
-            p = fbm_positions(1, N, alpha=a, K_um2_s_alpha=D[i], localization_sd_um=np.sqrt(x[i] * D[i] * DT**a),
-                              **kw)
+            p = fbm_positions(
+                1, N, alpha=a, K_um2_s_alpha=D[i], localization_sd_um=np.sqrt(x[i] * D[i] * DT**a), **kw
+            )
         elif cls == "confined":
             tau = np.exp(rng.uniform(np.log(1), np.log(10)))
-            p = confined_positions(1, N, D_um2_s=D[i], box_um=np.sqrt(12 * D[i] * tau * DT),
-                                   localization_sd_um=np.sqrt(x[i] * D[i] * DT), **kw)
+            p = confined_positions(
+                1,
+                N,
+                D_um2_s=D[i],
+                box_um=np.sqrt(12 * D[i] * tau * DT),
+                localization_sd_um=np.sqrt(x[i] * D[i] * DT),
+                **kw,
+            )
         elif cls == "directed":
             u = np.exp(rng.uniform(np.log(0.3), np.log(1.0)))
-            p = directed_positions(1, N, D_um2_s=D[i], speed_um_s=u * np.sqrt(D[i] / DT),
-                                   localization_sd_um=np.sqrt(x[i] * D[i] * DT), **kw)
+            p = directed_positions(
+                1,
+                N,
+                D_um2_s=D[i],
+                speed_um_s=u * np.sqrt(D[i] / DT),
+                localization_sd_um=np.sqrt(x[i] * D[i] * DT),
+                **kw,
+            )
         else:  # immobile
             p = np.exp(rng.uniform(np.log(0.01), np.log(0.1))) * rng.standard_normal((1, N, 2))
         out[i] = p[0]
@@ -160,8 +225,9 @@ def run_confusion(n_per_class: int, rng: np.random.Generator) -> pd.DataFrame:
             for e_frac in EXPOSURES:
                 e = e_frac * DT
                 pos, _ = simulate_class(cls, max(1, n_per_class // len(EXPOSURES)), N, e, rng)
-                out = classify_tracks(positions_to_tracks(pos, frame_interval_s=DT), frame_interval_s=DT,
-                                      exposure_s=e)
+                out = classify_tracks(
+                    positions_to_tracks(pos, frame_interval_s=DT), frame_interval_s=DT, exposure_s=e
+                )
                 rows.append(pd.DataFrame({"N": N, "true": cls, "pred": out["motion_class"].to_numpy()}))
     return pd.concat(rows, ignore_index=True)
 
@@ -178,8 +244,11 @@ def report_confusion(df: pd.DataFrame) -> None:
         for t in CLASSES:
             r = g[g["true"] == t]["pred"].value_counts(normalize=True)
             print(f"| {t} | " + " | ".join(f"{r.get(c, 0.0):.2f}" for c in cols) + " |")
-        print(f"\naccuracy {acc:.3f} over {len(g)} tracks (undetermined counted wrong); "
-              f"{acc_dec:.3f} among the {decided.mean():.0%} decided" + (" (target >= 0.85)" if N == 300 else ""))
+        print(
+            f"\naccuracy {acc:.3f} over {len(g)} tracks (undetermined counted wrong); "
+            f"{acc_dec:.3f} among the {decided.mean():.0%} decided"
+            + (" (target >= 0.85)" if N == 300 else "")
+        )
 
 
 # ----------------------------------------------------------------------------------------- per-track alpha
@@ -195,26 +264,56 @@ def run_alpha_mae(n_tracks: int, rng: np.random.Generator) -> pd.DataFrame:
         pos = np.empty((n, N, 2))
         for i in range(n):
             if brown[i]:
-                pos[i] = brownian_positions(1, N, D_um2_s=0.5, frame_interval_s=DT, exposure_s=e,
-                                            localization_sd_um=np.sqrt(x[i] * 0.5 * DT), rng=rng)[0]
+                pos[i] = brownian_positions(
+                    1,
+                    N,
+                    D_um2_s=0.5,
+                    frame_interval_s=DT,
+                    exposure_s=e,
+                    localization_sd_um=np.sqrt(x[i] * 0.5 * DT),
+                    rng=rng,
+                )[0]
             else:
-                pos[i] = fbm_positions(1, N, alpha=a[i], K_um2_s_alpha=0.5, frame_interval_s=DT, exposure_s=e,
-                                       localization_sd_um=np.sqrt(x[i] * 0.5 * DT ** a[i]), rng=rng)[0]
-        out = classify_tracks(positions_to_tracks(pos, frame_interval_s=DT), frame_interval_s=DT, exposure_s=e)
-        rows.append(pd.DataFrame({"N": N, "x": x, "alpha_true": a, "alpha_msdkit": out["alpha"].to_numpy(),
-                                  "alpha_loglog": loglog_alpha(pos)}))
+                pos[i] = fbm_positions(
+                    1,
+                    N,
+                    alpha=a[i],
+                    K_um2_s_alpha=0.5,
+                    frame_interval_s=DT,
+                    exposure_s=e,
+                    localization_sd_um=np.sqrt(x[i] * 0.5 * DT ** a[i]),
+                    rng=rng,
+                )[0]
+        out = classify_tracks(
+            positions_to_tracks(pos, frame_interval_s=DT), frame_interval_s=DT, exposure_s=e
+        )
+        rows.append(
+            pd.DataFrame(
+                {
+                    "N": N,
+                    "x": x,
+                    "alpha_true": a,
+                    "alpha_msdkit": out["alpha"].to_numpy(),
+                    "alpha_loglog": loglog_alpha(pos),
+                }
+            )
+        )
     return pd.concat(rows, ignore_index=True)
 
 
 def report_alpha(df: pd.DataFrame) -> None:
-    df = df.assign(err_m=(df.alpha_msdkit - df.alpha_true).abs(), err_l=(df.alpha_loglog - df.alpha_true).abs())
+    df = df.assign(
+        err_m=(df.alpha_msdkit - df.alpha_true).abs(), err_l=(df.alpha_loglog - df.alpha_true).abs()
+    )
     print("\n## Per-track alpha, mean absolute error (Brownian + FBM alpha 0.1-1.9, 50-300 points, x 0-3)\n")
     print("| subset | tracks | msdkit (step likelihood) | log-log TA-MSD lags 1-10 | ratio |")
     print("|---|---|---|---|---|")
 
     def line(name, g):
-        print(f"| {name} | {len(g)} | {g.err_m.mean():.3f} | {g.err_l.mean():.3f} | "
-              f"{g.err_m.mean() / g.err_l.mean():.2f} |")
+        print(
+            f"| {name} | {len(g)} | {g.err_m.mean():.3f} | {g.err_l.mean():.3f} | "
+            f"{g.err_m.mean() / g.err_l.mean():.2f} |"
+        )
 
     line("all", df)
     for lo, hi in ((0, 1), (1, 2), (2, 3.01)):
@@ -240,8 +339,10 @@ def main() -> None:
     t2 = time.perf_counter()
     report_sample_flags(run_sample_flags(args.samples, rng))
     t3 = time.perf_counter()
-    print(f"\nruntime: confusion {t1 - t0:.0f} s, alpha {t2 - t1:.0f} s, sample flags {t3 - t2:.0f} s "
-          f"(1 core, seed {args.seed})")
+    print(
+        f"\nruntime: confusion {t1 - t0:.0f} s, alpha {t2 - t1:.0f} s, sample flags {t3 - t2:.0f} s "
+        f"(1 core, seed {args.seed})"
+    )
 
 
 if __name__ == "__main__":

@@ -3,14 +3,16 @@
 Per track, five models of the steps are fitted by likelihood (see :mod:`msdkit.motion_models`): immobile
 (localisation noise only), Brownian with localisation offset and motion blur, power law (fractional Brownian
 motion) with offset, confined in a box (reflecting walls, plateau L²/6 per axis) and diffusion plus a constant
-velocity. The likelihood of the steps accounts for the correlation of the MSD points, which a least-squares fit
-of the time-averaged MSD ignores. The model with the highest penalised log-likelihood gives the class (penalties
-are χ² quantiles, see :data:`DEFAULT_PENALTIES`); the interval of alpha comes from the profile likelihood, and a
-track is anomalous exactly when that interval excludes 1 and the power law beats the other models.
+velocity. The likelihood of the steps accounts for the correlation of the MSD points, which a least-squares
+fit of the time-averaged MSD ignores. The model with the highest penalised log-likelihood gives the class
+(penalties are χ² quantiles, see :data:`DEFAULT_PENALTIES`); the interval of alpha comes from the profile
+likelihood, and a track is anomalous exactly when that interval excludes 1 and the power law beats the
+other models.
 
 Per sample, :func:`sample_motion` pools the per-track alpha profiles into an ensemble alpha (noise- and
 blur-corrected, because every track carries its own noise level), with a bootstrap interval over tracks, and
-compares time-averaged and ensemble-averaged MSDs, the spread of per-track MSDs with what finite tracks explain,
+compares time-averaged and ensemble-averaged MSDs, the spread of per-track MSDs with what finite tracks
+explain,
 and the shape of the displacement distribution, to set plain-word flags.
 
 References
@@ -93,19 +95,37 @@ def _coordinate_columns(tracks: pd.DataFrame) -> tuple[str, ...]:
 
 def _check_tracks(tracks, frame_interval_s, exposure_s):
     if not isinstance(tracks, pd.DataFrame):
-        raise InputError(expected_got("tracks", "a DataFrame with columns track, frame, x_um, y_um",
-                                      type(tracks).__name__, "Pass a track table."))
+        raise InputError(
+            expected_got(
+                "tracks",
+                "a DataFrame with columns track, frame, x_um, y_um",
+                type(tracks).__name__,
+                "Pass a track table.",
+            )
+        )
     need = ("track", "frame", "x_um", "y_um")
     missing = [c for c in need if c not in tracks.columns]
     if missing:
-        raise InputError(expected_got("tracks columns", ", ".join(need), list(tracks.columns),
-                                      f"Add the missing column(s) {missing} (positions in µm)."))
+        raise InputError(
+            expected_got(
+                "tracks columns",
+                ", ".join(need),
+                list(tracks.columns),
+                f"Add the missing column(s) {missing} (positions in µm).",
+            )
+        )
     if not (frame_interval_s is not None and np.isfinite(frame_interval_s) and frame_interval_s > 0):
         raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
     exposure = frame_interval_s if exposure_s is None else float(exposure_s)
     if not 0 <= exposure <= frame_interval_s * (1 + 1e-9):
-        raise InputError(expected_got("exposure_s", f"between 0 and frame_interval_s={frame_interval_s}",
-                                      exposure_s, "The exposure cannot exceed the frame interval."))
+        raise InputError(
+            expected_got(
+                "exposure_s",
+                f"between 0 and frame_interval_s={frame_interval_s}",
+                exposure_s,
+                "The exposure cannot exceed the frame interval.",
+            )
+        )
     return min(exposure, frame_interval_s)
 
 
@@ -123,12 +143,18 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
     dup = (t[1:] == t[:-1]) & (f[1:] == f[:-1])
     if dup.any():
         i = int(np.flatnonzero(dup)[0])
-        raise InputError(expected_got("tracks: (track, frame) pairs", "unique",
-                                      f"track {t[i]} has frame {f[i]} twice", "Keep one position per track and frame."))
+        raise InputError(
+            expected_got(
+                "tracks: (track, frame) pairs",
+                "unique",
+                f"track {t[i]} has frame {f[i]} twice",
+                "Keep one position per track and frame.",
+            )
+        )
     start = np.flatnonzero(np.concatenate([[True], t[1:] != t[:-1]]))
     stop = np.append(start[1:], t.size)
     positions = []
-    for a, b in zip(start, stop):
+    for a, b in zip(start, stop, strict=True):
         fr = f[a:b]
         p = xyz[a:b]
         span = int(fr[-1] - fr[0] + 1)
@@ -201,7 +227,7 @@ def _fingerprint(tracks: pd.DataFrame, *extra) -> str:
 
 
 def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
-    """Fit all models to all tracks (the last two results are kept, so sample_motion reuses classify's fits)."""
+    """Fit all models to all tracks (the last two results are kept: sample_motion reuses classify's fits)."""
     key = _fingerprint(tracks, float(frame_interval_s), float(exposure_s), int(min_points))
     if key in _FIT_CACHE:
         return _FIT_CACHE[key]
@@ -212,7 +238,9 @@ def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, m
     return fits
 
 
-def _fit_all_uncached(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
+def _fit_all_uncached(
+    tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int
+) -> _Fits:
     arr = _track_arrays(tracks)
     T = arr.ids.size
     dt = float(frame_interval_s)
@@ -249,15 +277,34 @@ def _fit_all_uncached(tracks: pd.DataFrame, frame_interval_s: float, exposure_s:
         excess = np.sum(f.end_to_end**2, axis=1) - steps.shape[2] * var_end
         out["v"][idx] = np.sqrt(np.clip(excess, 0.0, None)) / (Ns * dt)
     return _Fits(
-        ids=arr.ids, n_points=arr.n_points, usable=usable, ll=ll, alpha=out["alpha"], alpha_lo=out["alpha_lo"],
-        alpha_hi=out["alpha_hi"], alpha_profile=profile, D_um2_s=out["D"], K_um2_s_alpha=out["K"],
-        sigma_um=out["sigma"], conf_L_um=out["L"], conf_tau_s=out["tau"], conf_noise_um2=out["cnoise"],
-        speed_um_s=out["v"], n_axes=n_axes, positions=arr.positions,
+        ids=arr.ids,
+        n_points=arr.n_points,
+        usable=usable,
+        ll=ll,
+        alpha=out["alpha"],
+        alpha_lo=out["alpha_lo"],
+        alpha_hi=out["alpha_hi"],
+        alpha_profile=profile,
+        D_um2_s=out["D"],
+        K_um2_s_alpha=out["K"],
+        sigma_um=out["sigma"],
+        conf_L_um=out["L"],
+        conf_tau_s=out["tau"],
+        conf_noise_um2=out["cnoise"],
+        speed_um_s=out["v"],
+        n_axes=n_axes,
+        positions=arr.positions,
     )
 
 
-def _choose(fits: _Fits, *, frame_interval_s: float, penalties: dict, sigma_um: float | None,
-            max_alpha_ci_width: float):
+def _choose(
+    fits: _Fits,
+    *,
+    frame_interval_s: float,
+    penalties: dict,
+    sigma_um: float | None,
+    max_alpha_ci_width: float,
+):
     names = list(_MODEL_PARAMS)
     ll = np.column_stack([fits.ll[m] for m in names])
     pen = np.array([penalties[m] for m in names], float)
@@ -361,7 +408,8 @@ def classify_tracks(
     Examples
     --------
     >>> from msdkit.simulate import fbm_positions, positions_to_tracks
-    >>> pos = fbm_positions(5, 300, alpha=0.4, K_um2_s_alpha=0.1, frame_interval_s=0.05, rng=0)
+    >>> pos = fbm_positions(5, 400, alpha=0.3, K_um2_s_alpha=0.1, frame_interval_s=0.05,
+    ...                     localization_sd_um=0.01, rng=0)
     >>> out = classify_tracks(positions_to_tracks(pos, frame_interval_s=0.05), frame_interval_s=0.05,
     ...                       exposure_s=0.0)
     >>> list(out["motion_class"])
@@ -372,40 +420,54 @@ def classify_tracks(
     if penalties:
         unknown = set(penalties) - set(pens)
         if unknown:
-            raise ValueError(expected_got("penalties keys", f"some of {sorted(pens)}", sorted(unknown),
-                                          "Name the models whose penalty you change."))
+            raise ValueError(
+                expected_got(
+                    "penalties keys",
+                    f"some of {sorted(pens)}",
+                    sorted(unknown),
+                    "Name the models whose penalty you change.",
+                )
+            )
         pens.update({k: float(v) for k, v in penalties.items()})
     fits = _fit_all(tracks, frame_interval_s, exposure, min_points)
-    labels, conf, score = _choose(fits, frame_interval_s=frame_interval_s, penalties=pens, sigma_um=sigma_um,
-                                  max_alpha_ci_width=max_alpha_ci_width)
+    labels, conf, score = _choose(
+        fits,
+        frame_interval_s=frame_interval_s,
+        penalties=pens,
+        sigma_um=sigma_um,
+        max_alpha_ci_width=max_alpha_ci_width,
+    )
     T = fits.ids.size
     stats_ = np.array([_step_statistics(p) for p in fits.positions]) if T else np.zeros((0, 4))
     is_conf = labels == "confined"
     is_dir = labels == "directed"
     ll = fits.ll
-    out = pd.DataFrame({
-        "track": fits.ids,
-        "n_points": fits.n_points,
-        "motion_class": labels,
-        "class_confidence": conf,
-        "alpha": fits.alpha,
-        "alpha_ci95_lo": fits.alpha_lo,
-        "alpha_ci95_hi": fits.alpha_hi,
-        "D_um2_s": fits.D_um2_s,
-        "K_um2_s_alpha": fits.K_um2_s_alpha,
-        "sigma_um": fits.sigma_um,
-        "confinement_um": np.where(is_conf, fits.conf_L_um, np.nan),
-        "confinement_time_s": np.where(is_conf, fits.conf_tau_s, np.nan),
-        "speed_um_s": np.where(is_dir, fits.speed_um_s, np.nan),
-        "loglik_gain_mobile": np.fmax(np.fmax(ll["normal"], ll["anomalous"]), ll["confined"]) - ll["immobile"],
-        "loglik_gain_anomalous": ll["anomalous"] - ll["normal"],
-        "loglik_gain_confined": ll["confined"] - ll["normal"],
-        "loglik_gain_directed": ll["directed"] - ll["normal"],
-        "step_corr_lag1": stats_[:, 0],
-        "non_gaussian": stats_[:, 1],
-        "straightness": stats_[:, 2],
-        "gyration_asymmetry": stats_[:, 3],
-    })
+    out = pd.DataFrame(
+        {
+            "track": fits.ids,
+            "n_points": fits.n_points,
+            "motion_class": labels,
+            "class_confidence": conf,
+            "alpha": fits.alpha,
+            "alpha_ci95_lo": fits.alpha_lo,
+            "alpha_ci95_hi": fits.alpha_hi,
+            "D_um2_s": fits.D_um2_s,
+            "K_um2_s_alpha": fits.K_um2_s_alpha,
+            "sigma_um": fits.sigma_um,
+            "confinement_um": np.where(is_conf, fits.conf_L_um, np.nan),
+            "confinement_time_s": np.where(is_conf, fits.conf_tau_s, np.nan),
+            "speed_um_s": np.where(is_dir, fits.speed_um_s, np.nan),
+            "loglik_gain_mobile": np.fmax(np.fmax(ll["normal"], ll["anomalous"]), ll["confined"])
+            - ll["immobile"],
+            "loglik_gain_anomalous": ll["anomalous"] - ll["normal"],
+            "loglik_gain_confined": ll["confined"] - ll["normal"],
+            "loglik_gain_directed": ll["directed"] - ll["normal"],
+            "step_corr_lag1": stats_[:, 0],
+            "non_gaussian": stats_[:, 1],
+            "straightness": stats_[:, 2],
+            "gyration_asymmetry": stats_[:, 3],
+        }
+    )
     assert set(out["motion_class"]) <= set(MOTION_CLASSES)
     return out
 
@@ -606,9 +668,17 @@ def sample_motion(
     from .motion_models import amplitude_at_alpha, brownian_msd_um2, ta_msd_relative_variance
 
     exposure = _check_tracks(tracks, frame_interval_s, exposure_s)
-    if not isinstance(track_classes, pd.DataFrame) or not {"track", "motion_class"} <= set(track_classes.columns):
-        raise InputError(expected_got("track_classes", "the DataFrame returned by classify_tracks",
-                                      type(track_classes).__name__, "Call classify_tracks first."))
+    if not isinstance(track_classes, pd.DataFrame) or not {"track", "motion_class"} <= set(
+        track_classes.columns
+    ):
+        raise InputError(
+            expected_got(
+                "track_classes",
+                "the DataFrame returned by classify_tracks",
+                type(track_classes).__name__,
+                "Call classify_tracks first.",
+            )
+        )
     g = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
     dt = float(frame_interval_s)
     e = exposure / dt
@@ -679,13 +749,23 @@ def sample_motion(
 
     ta_mean, ea_mean = _means(np.ones((1, n_tr)))
     ta_mean, ea_mean = ta_mean[0], ea_mean[0]
-    cmp = pd.DataFrame({"lag_frames": lags.astype(np.int64), "lag_s": lags * dt, "ta_msd_um2": ta_mean,
-                        "ea_msd_um2": ea_mean, "n_tracks": ta_cnt.sum(0).astype(np.int64)})
+    cmp = pd.DataFrame(
+        {
+            "lag_frames": lags.astype(np.int64),
+            "lag_s": lags * dt,
+            "ta_msd_um2": ta_mean,
+            "ea_msd_um2": ea_mean,
+            "n_tracks": ta_cnt.sum(0).astype(np.int64),
+        }
+    )
     a_ta = float(_slopes(ta_mean[None])[0])
     a_ea = float(_slopes(ea_mean[None])[0])
     diff_ci = (np.nan, np.nan)
-    boot_w = g.multinomial(n_tr, np.full(n_tr, 1.0 / n_tr), size=n_boot).astype(float) if (
-        n_tr >= 3 and n_boot > 0) else None
+    boot_w = (
+        g.multinomial(n_tr, np.full(n_tr, 1.0 / n_tr), size=n_boot).astype(float)
+        if (n_tr >= 3 and n_boot > 0)
+        else None
+    )
     if boot_w is not None and n_max >= 2:
         bt, be = _means(boot_w)
         diffs = _slopes(be) - _slopes(bt)
@@ -697,16 +777,19 @@ def sample_motion(
     eb = eb_exp = np.nan
     ok_eb = lengths > k_eb + 1
     if ok_eb.sum() >= 3:
-        col = np.array([np.mean(np.sum((p[k_eb:] - p[:-k_eb]) ** 2, axis=1))
-                        for p, o in zip(pos, ok_eb) if o])
+        col = np.array(
+            [np.mean(np.sum((p[k_eb:] - p[:-k_eb]) ** 2, axis=1))
+             for p, o in zip(pos, ok_eb, strict=True) if o]
+        )
         eb = float(np.var(col) / np.mean(col) ** 2)
         D_bar = float(np.nanmedian(fits.D_um2_s[use]))
         s2 = float(np.nanmedian(fits.sigma_um[use] ** 2))
         qs = {}
         for L in np.unique(lengths[ok_eb]):
             t = np.arange(L) * dt
-            M = brownian_msd_um2(t, D_um2_s=max(D_bar, 1e-12), sigma_um=np.sqrt(s2), exposure_s=exposure,
-                                 n_dims=1)
+            M = brownian_msd_um2(
+                t, D_um2_s=max(D_bar, 1e-12), sigma_um=np.sqrt(s2), exposure_s=exposure, n_dims=1
+            )
             qs[L] = ta_msd_relative_variance(M, k_eb, L - 1, fits.n_axes)
         eb_exp = float(np.mean([qs[L] for L in lengths[ok_eb]]))
 
@@ -734,7 +817,9 @@ def sample_motion(
     # flags
     flags: list[str] = []
     numbers: dict[str, float] = {
-        "alpha": float(alpha), "alpha_ci95_lo": float(alpha_ci[0]), "alpha_ci95_hi": float(alpha_ci[1]),
+        "alpha": float(alpha),
+        "alpha_ci95_lo": float(alpha_ci[0]),
+        "alpha_ci95_hi": float(alpha_ci[1]),
         "n_tracks_used": n_used,
     }
     if np.isfinite(alpha_ci[1]) and alpha_ci[1] < 1.0:
@@ -757,11 +842,19 @@ def sample_motion(
     numbers["alpha_ea_minus_ta"] = float(d_ea)
     numbers["ergodicity_breaking"] = float(eb)
     numbers["ergodicity_breaking_brownian"] = float(eb_exp)
-    if np.isfinite(d_ea) and np.isfinite(diff_ci[0]) and (diff_ci[0] > 0 or diff_ci[1] < 0) and abs(d_ea) > 0.2:
+    if (
+        np.isfinite(d_ea)
+        and np.isfinite(diff_ci[0])
+        and (diff_ci[0] > 0 or diff_ci[1] < 0)
+        and abs(d_ea) > 0.2
+    ):
         flags.append("nonergodic")
     drift_v = tuple(float(v) for v in drift.velocity_um_s) if drift is not None else (0.0, 0.0)
-    corrected = bool(drift.safe_to_subtract) if (drift is not None and drift_corrected is None) else bool(
-        drift_corrected)
+    corrected = (
+        bool(drift.safe_to_subtract)
+        if (drift is not None and drift_corrected is None)
+        else bool(drift_corrected)
+    )
     if drift is not None:
         numbers["drift_speed_um_s"] = float(np.hypot.reduce(np.asarray(drift_v)))
         numbers["drift_p_value"] = float(drift.p_value)
@@ -773,11 +866,26 @@ def sample_motion(
     if sample_fit is not None:
         numbers["alpha_msd_fit"] = float(getattr(sample_fit, "alpha", np.nan))
     return SampleMotion(
-        alpha=float(alpha), alpha_ci95=(float(alpha_ci[0]), float(alpha_ci[1])), n_tracks=int(fits.ids.size),
-        n_tracks_used=n_used, class_counts=counts, class_fractions=fractions, msd_comparison=cmp,
-        alpha_ta=float(a_ta), alpha_ea=float(a_ea), alpha_ea_minus_ta_ci99=diff_ci,
-        ergodicity_breaking=float(eb), ergodicity_breaking_brownian=float(eb_exp), non_gaussian=float(ng),
-        non_gaussian_se=float(ng_se), non_gaussian_within=float(ng_within), heterogeneity_ratio=float(het_ratio),
-        heterogeneity_p=float(het_p), amplitude_spread=float(spread), drift_um_s=drift_v,
-        drift_corrected=corrected, flags=tuple(flags), numbers=numbers,
+        alpha=float(alpha),
+        alpha_ci95=(float(alpha_ci[0]), float(alpha_ci[1])),
+        n_tracks=int(fits.ids.size),
+        n_tracks_used=n_used,
+        class_counts=counts,
+        class_fractions=fractions,
+        msd_comparison=cmp,
+        alpha_ta=float(a_ta),
+        alpha_ea=float(a_ea),
+        alpha_ea_minus_ta_ci99=diff_ci,
+        ergodicity_breaking=float(eb),
+        ergodicity_breaking_brownian=float(eb_exp),
+        non_gaussian=float(ng),
+        non_gaussian_se=float(ng_se),
+        non_gaussian_within=float(ng_within),
+        heterogeneity_ratio=float(het_ratio),
+        heterogeneity_p=float(het_p),
+        amplitude_spread=float(spread),
+        drift_um_s=drift_v,
+        drift_corrected=corrected,
+        flags=tuple(flags),
+        numbers=numbers,
     )

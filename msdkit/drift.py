@@ -7,7 +7,8 @@ as the particles' own motions are independent of each other (common practice in 
 
 Two drift models are offered:
 
-* ``"linear"``: a constant velocity, estimated from the sum of each track's steps (its end-to-end displacement)
+* ``"linear"``: a constant velocity, estimated from the sum of each track's steps (its end-to-end
+  displacement)
   pooled over tracks with robust (Huber) weights, so a few particles that are carried along by something else
   (active transport, linking errors) do not pull the estimate. Its standard error is the cluster-robust
   ("sandwich") error with tracks as clusters, valid for any motion of the particles.
@@ -109,13 +110,25 @@ def _coordinate_columns(tracks: pd.DataFrame) -> tuple[str, ...]:
 
 def _validate(tracks: pd.DataFrame, frame_interval_s: float) -> tuple[str, ...]:
     if not isinstance(tracks, pd.DataFrame):
-        raise InputError(expected_got("tracks", "a DataFrame with columns track, frame, x_um, y_um",
-                                      type(tracks).__name__, "Pass a track table."))
+        raise InputError(
+            expected_got(
+                "tracks",
+                "a DataFrame with columns track, frame, x_um, y_um",
+                type(tracks).__name__,
+                "Pass a track table.",
+            )
+        )
     need = ("track", "frame", "x_um", "y_um")
     missing = [c for c in need if c not in tracks.columns]
     if missing:
-        raise InputError(expected_got("tracks columns", ", ".join(need), list(tracks.columns),
-                                      f"Add the missing column(s) {missing} (positions in µm)."))
+        raise InputError(
+            expected_got(
+                "tracks columns",
+                ", ".join(need),
+                list(tracks.columns),
+                f"Add the missing column(s) {missing} (positions in µm).",
+            )
+        )
     if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
         raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
     return _coordinate_columns(tracks)
@@ -226,7 +239,7 @@ def estimate_drift(
     smoothing_frames: float | None = None,
     significance_level: float = 0.001,
 ) -> DriftEstimate:
-    """Estimate the drift that all particles share from their mean displacement between frames.
+    r"""Estimate the drift that all particles share from their mean displacement between frames.
 
     Parameters
     ----------
@@ -250,11 +263,11 @@ def estimate_drift(
 
     Notes
     -----
-    With steps :math:`\\Delta r_{ik}` of track *i*, the linear model solves
-    :math:`\\hat v = \\sum_i w_i S_i / \\sum_i w_i T_i` with :math:`S_i = \\sum_k \\Delta r_{ik}` (the track's
+    With steps :math:`\Delta r_{ik}` of track *i*, the linear model solves
+    :math:`\hat v = \sum_i w_i S_i / \sum_i w_i T_i` with :math:`S_i = \sum_k \Delta r_{ik}` (the track's
     end-to-end displacement) and :math:`T_i` its duration, with Huber weights :math:`w_i` on the per-step RMS
-    residual. The covariance of :math:`\\hat v` is the cluster-robust sandwich
-    :math:`\\sum_i w_i^2 (S_i - \\hat v T_i)(S_i - \\hat v T_i)^T / (\\sum_i w_i T_i)^2`, which holds for any
+    residual. The covariance of :math:`\hat v` is the cluster-robust sandwich
+    :math:`\sum_i w_i^2 (S_i - \hat v T_i)(S_i - \hat v T_i)^T / (\sum_i w_i T_i)^2`, which holds for any
     kind of motion of independent particles, including correlated steps from localisation noise.
 
     References
@@ -271,10 +284,13 @@ def estimate_drift(
     """
     cols = _validate(tracks, frame_interval_s)
     if model not in ("auto", "linear", "path"):
-        raise ValueError(expected_got("model", "'auto', 'linear' or 'path'", repr(model),
-                                      "Choose a drift model."))
+        raise ValueError(
+            expected_got("model", "'auto', 'linear' or 'path'", repr(model), "Choose a drift model.")
+        )
     if not 0 < significance_level < 1:
-        raise ValueError(expected_got("significance_level", "in (0, 1)", significance_level, "Use e.g. 0.001."))
+        raise ValueError(
+            expected_got("significance_level", "in (0, 1)", significance_level, "Use e.g. 0.001.")
+        )
     dt = float(frame_interval_s)
     nd = len(cols)
     tid, f0, gap, d = _steps(tracks, cols)
@@ -282,9 +298,23 @@ def estimate_drift(
     frames_all = np.sort(tracks["frame"].to_numpy().astype(np.int64))
     if tid.size == 0:
         first = int(frames_all[0]) if frames_all.size else 0
-        path = _path_table(np.array([first]), np.zeros((1, nd)), np.zeros((1, nd)), np.zeros(1, int), dt, names)
-        return DriftEstimate(tuple([0.0] * nd), tuple([np.inf] * nd), path, "linear", 0, 0, False, 1.0, 1.0,
-                             False, dt, "no track has two positions")
+        path = _path_table(
+            np.array([first]), np.zeros((1, nd)), np.zeros((1, nd)), np.zeros(1, int), dt, names
+        )
+        return DriftEstimate(
+            tuple([0.0] * nd),
+            tuple([np.inf] * nd),
+            path,
+            "linear",
+            0,
+            0,
+            False,
+            1.0,
+            1.0,
+            False,
+            dt,
+            "no track has two positions",
+        )
     d = _winsorise(d)
     n_tr = int(tid.max()) + 1
     S = np.stack([np.bincount(tid, d[:, j], n_tr) for j in range(nd)], axis=1)
@@ -294,7 +324,9 @@ def estimate_drift(
 
     # "no drift": Hotelling-type F test on the cluster-robust covariance
     try:
-        t2 = float(v @ np.linalg.solve(cov, v)) if np.all(np.isfinite(cov)) and np.linalg.det(cov) > 0 else 0.0
+        t2 = (
+            float(v @ np.linalg.solve(cov, v)) if np.all(np.isfinite(cov)) and np.linalg.det(cov) > 0 else 0.0
+        )
     except np.linalg.LinAlgError:
         t2 = 0.0
     if n_tr > nd:
@@ -356,8 +388,10 @@ def estimate_drift(
     if n_tr < min_tracks:
         reason = f"only {n_tr} tracks (at least {min_tracks} needed to estimate a common drift)"
     elif not safe:
-        reason = (f"only {n_sharing} of {n_tr} tracks move with the common drift (need at least {min_tracks} "
-                  "and half of them)")
+        reason = (
+            f"only {n_sharing} of {n_tr} tracks move with the common drift (need at least {min_tracks} "
+            "and half of them)"
+        )
     else:
         reason = f"{n_sharing} of {n_tr} tracks share the drift"
     return DriftEstimate(
@@ -403,8 +437,11 @@ def remove_drift(tracks: pd.DataFrame, drift: DriftEstimate) -> pd.DataFrame:
         range use the linear velocity).
     """
     if not isinstance(drift, DriftEstimate):
-        raise InputError(expected_got("drift", "a DriftEstimate", type(drift).__name__,
-                                      "Pass the result of estimate_drift."))
+        raise InputError(
+            expected_got(
+                "drift", "a DriftEstimate", type(drift).__name__, "Pass the result of estimate_drift."
+            )
+        )
     cols = _validate(tracks, drift.frame_interval_s)
     out = tracks.copy()
     frame = out["frame"].to_numpy().astype(np.int64)

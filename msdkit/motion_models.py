@@ -47,7 +47,8 @@ __all__ = [
 
 #: Grids of the profiled shape parameters.
 ALPHA_GRID = np.round(np.arange(0.05, 1.951, 0.05), 10)
-#: Noise ratio r (noise part of the per-axis MSD over the signal scale) on a grid uniform in u = asinh(r/0.01):
+#: Noise ratio r (noise part of the per-axis MSD over the signal scale), on a grid uniform in
+#: u = asinh(r/0.01):
 #: fine near 0 and logarithmic beyond; slightly negative values (down to −0.25, where the spectrum stays
 #: positive) are allowed so that a small noise level is not biased by the r ≥ 0 boundary (the same reason an
 #: MSD fit lets its offset go negative); a negative value may remove at most half of the signal spectrum.
@@ -197,7 +198,7 @@ def split_cosine_taper(n_steps: int, fraction: float = TAPER_FRACTION) -> np.nda
     if m >= 1:
         ramp = 0.5 * (1.0 - np.cos(np.pi * (np.arange(m) + 0.5) / m))
         h[:m] = ramp
-        h[N - m:] = ramp[::-1]
+        h[N - m :] = ramp[::-1]
     return h / np.sqrt(np.sum(h * h))
 
 
@@ -233,7 +234,7 @@ def frequency_weights(n_steps: int) -> np.ndarray:
 
 
 def periodograms(steps: np.ndarray, taper: np.ndarray | None = None) -> np.ndarray:
-    """Periodogram of each track's steps, summed over axes: steps (n_tracks, N, n_axes) → (n_tracks, N//2+1)."""
+    """Periodogram of each track's steps summed over axes: (n_tracks, N, n_axes) → (n_tracks, N//2 + 1)."""
     N = steps.shape[1]
     h = np.full(N, 1.0 / np.sqrt(N)) if taper is None else taper
     F = np.fft.rfft(steps * h[None, :, None], axis=1)
@@ -307,8 +308,9 @@ def _profile_noise(ll: np.ndarray):
     return best, 0.01 * np.sinh(u), idx
 
 
-def _loglik_grid(P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int,
-                 drop_zero: bool = False):
+def _loglik_grid(
+    P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int, drop_zero: bool = False
+):
     """Profile (scale-maximised) Whittle log-likelihood on shapes × noise ratios.
 
     P: (T, F) periodograms summed over axes; shapes: (S, F). Returns ll (T, S, R) and scale (T, S, R).
@@ -424,17 +426,32 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     ll_imm = -n_axes * (np.log(spec_n) @ w + W * np.log(sc_n) + W)
 
     # directed: Brownian steps with a free mean (zero frequency left out of the fit)
-    ll_d, sc_d = _loglik_grid(Pd, w, bank.fbm[i1:i1 + 1], bank.noise, n_axes, drop_zero=True)
+    ll_d, sc_d = _loglik_grid(Pd, w, bank.fbm[i1 : i1 + 1], bank.noise, n_axes, drop_zero=True)
     ll_dir, _, idr = _profile_noise(ll_d[:, 0, :])
     dir_scale = sc_d[rows, 0, idr]
     dir_noise = dir_scale * NOISE_RATIO_GRID[idr]
 
     return StepFits(
-        ll_immobile=ll_imm, ll_brownian=ll_brown, ll_fbm=ll_fbm, ll_confined=ll_conf, ll_directed=ll_dir,
-        alpha_profile=prof, alpha=alpha, alpha_lo=lo, alpha_hi=hi,
-        fbm_scale=fbm_scale, fbm_noise=fbm_noise, brown_scale=brown_scale, brown_noise=brown_noise,
-        immobile_noise=sc_n, conf_plateau=conf_plateau, conf_tau=conf_tau, conf_noise=conf_noise,
-        dir_scale=dir_scale, dir_noise=dir_noise, end_to_end=steps.sum(axis=1),
+        ll_immobile=ll_imm,
+        ll_brownian=ll_brown,
+        ll_fbm=ll_fbm,
+        ll_confined=ll_conf,
+        ll_directed=ll_dir,
+        alpha_profile=prof,
+        alpha=alpha,
+        alpha_lo=lo,
+        alpha_hi=hi,
+        fbm_scale=fbm_scale,
+        fbm_noise=fbm_noise,
+        brown_scale=brown_scale,
+        brown_noise=brown_noise,
+        immobile_noise=sc_n,
+        conf_plateau=conf_plateau,
+        conf_tau=conf_tau,
+        conf_noise=conf_noise,
+        dir_scale=dir_scale,
+        dir_noise=dir_noise,
+        end_to_end=steps.sum(axis=1),
     )
 
 
@@ -456,9 +473,12 @@ def _interval(prof: np.ndarray, level: np.ndarray):
         frac = np.clip((level - y_out) / np.where(y_in - y_out > 0, y_in - y_out, 1.0), 0.0, 1.0)
         return g[i_out] + frac * (g[i_in] - g[i_out])
 
-    lo = np.where(left_below >= 0, cross(np.clip(left_below, 0, A - 1), np.clip(left_below + 1, 0, A - 1)), g[0])
-    hi = np.where(right_below < A, cross(np.clip(right_below, 0, A - 1), np.clip(right_below - 1, 0, A - 1)),
-                  g[-1])
+    lo = np.where(
+        left_below >= 0, cross(np.clip(left_below, 0, A - 1), np.clip(left_below + 1, 0, A - 1)), g[0]
+    )
+    hi = np.where(
+        right_below < A, cross(np.clip(right_below, 0, A - 1), np.clip(right_below - 1, 0, A - 1)), g[-1]
+    )
     return lo, hi
 
 

@@ -91,8 +91,11 @@ def test_time_averaged_msd_variance_equals_qian_ratio():
     K = 20
     for n in (2, 5, 15):
         k = K - n + 1
-        qian = (4 * n**2 * k + 2 * k + n - n**3) / (6 * n * k**2) if n <= k else \
-            1 + (k**3 - 4 * n * k**2 + 4 * n - k) / (6 * n**2 * k)
+        qian = (
+            (4 * n**2 * k + 2 * k + n - n**3) / (6 * n * k**2)
+            if n <= k
+            else 1 + (k**3 - 4 * n * k**2 + 4 * n - k) / (6 * n**2 * k)
+        )
         assert ta_msd_relative_variance(M, n, K) == pytest.approx(qian, rel=1e-9)
 
 
@@ -101,8 +104,16 @@ def test_expected_periodogram_matches_the_mean_over_simulated_tracks(alpha, expo
     # Debiased Whittle (Sykulski et al. 2019, Biometrika 106:251): E[periodogram] is exact for finite N.
     rng = np.random.default_rng(3)
     N = 64
-    pos = fbm_positions(3000, N + 1, alpha=alpha, K_um2_s_alpha=1.0, frame_interval_s=DT, exposure_s=exposure,
-                        localization_sd_um=0.05, rng=rng)
+    pos = fbm_positions(
+        3000,
+        N + 1,
+        alpha=alpha,
+        K_um2_s_alpha=1.0,
+        frame_interval_s=DT,
+        exposure_s=exposure,
+        localization_sd_um=0.05,
+        rng=rng,
+    )
     h = split_cosine_taper(N)
     P = periodograms(np.diff(pos, axis=1), h) / 2  # per axis
     t = np.arange(N + 1) * DT
@@ -117,8 +128,16 @@ def test_expected_periodogram_matches_the_mean_over_simulated_tracks(alpha, expo
 def test_profile_interval_of_alpha_covers_the_truth():
     # 95 % profile-likelihood interval: coverage over 300 FBM tracks stays within a binomial band.
     rng = np.random.default_rng(4)
-    pos = fbm_positions(300, 201, alpha=0.6, K_um2_s_alpha=1.0, frame_interval_s=1.0, exposure_s=0.0,
-                        localization_sd_um=0.5, rng=rng)
+    pos = fbm_positions(
+        300,
+        201,
+        alpha=0.6,
+        K_um2_s_alpha=1.0,
+        frame_interval_s=1.0,
+        exposure_s=0.0,
+        localization_sd_um=0.5,
+        rng=rng,
+    )
     f = fit_step_models(np.diff(pos, axis=1), exposure_ratio=0.0)
     cover = np.mean((f.alpha_lo <= 0.6) & (f.alpha_hi >= 0.6))
     assert cover >= stats.binom.ppf(0.0005, 300, 0.93) / 300
@@ -130,8 +149,20 @@ def test_output_has_the_documented_columns_and_classes():
     rng = np.random.default_rng(0)
     pos = brownian_positions(5, 60, D_um2_s=0.5, frame_interval_s=DT, rng=rng)
     tracks = _tracks(pos)
-    tracks = pd.concat([tracks, pd.DataFrame({"track": [99] * 4, "frame": [0, 1, 2, 3], "time_s": 0.0,
-                                              "x_um": 0.0, "y_um": [0.0, 0.1, 0.2, 0.1]})])
+    tracks = pd.concat(
+        [
+            tracks,
+            pd.DataFrame(
+                {
+                    "track": [99] * 4,
+                    "frame": [0, 1, 2, 3],
+                    "time_s": 0.0,
+                    "x_um": 0.0,
+                    "y_um": [0.0, 0.1, 0.2, 0.1],
+                }
+            ),
+        ]
+    )
     out = classify_tracks(tracks, frame_interval_s=DT, exposure_s=0.0)
     assert list(out.columns) == list(CLASS_COLUMNS)
     assert set(out["motion_class"]) <= set(MOTION_CLASSES)
@@ -142,9 +173,20 @@ def test_brownian_tracks_are_mostly_called_normal():
     # Per-track false alarms: anomalous at 5 % (alpha interval excludes 1) plus confined and directed at
     # 1 % each -> at most ~8 % non-normal; binomial bound at 10 % for 600 tracks.
     rng = np.random.default_rng(5)
-    pos = np.concatenate([
-        brownian_positions(300, 100, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT,
-                           localization_sd_um=np.sqrt(x * 0.5 * DT), rng=rng) for x in (0.0, 2.0)])
+    pos = np.concatenate(
+        [
+            brownian_positions(
+                300,
+                100,
+                D_um2_s=0.5,
+                frame_interval_s=DT,
+                exposure_s=DT,
+                localization_sd_um=np.sqrt(x * 0.5 * DT),
+                rng=rng,
+            )
+            for x in (0.0, 2.0)
+        ]
+    )
     out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=DT)
     wrong = np.sum(~out["motion_class"].isin(["normal", "undetermined"]))
     assert wrong <= stats.binom.ppf(0.9995, 600, 0.10)
@@ -155,20 +197,38 @@ def test_brownian_tracks_are_mostly_called_normal():
 
 @pytest.mark.parametrize("cls", ["subdiffusive", "superdiffusive", "confined", "directed", "immobile"])
 def test_each_class_is_recognised_at_300_points(cls):
-    # Clear cases of each model at 300 points, x = 1: at least ~85 % recognised (binomial bound for 80 tracks).
+    # Clear cases of each model at 300 points, x = 1: ~90 % recognised (binomial bound for 80 tracks).
     rng = np.random.default_rng(6)
     n, N, D = 80, 300, 0.5
     s = np.sqrt(D * DT)
     if cls == "subdiffusive":
-        pos = fbm_positions(n, N, alpha=0.4, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng)
+        pos = fbm_positions(
+            n, N, alpha=0.4, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng
+        )
     elif cls == "superdiffusive":
-        pos = fbm_positions(n, N, alpha=1.6, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng)
+        pos = fbm_positions(
+            n, N, alpha=1.6, K_um2_s_alpha=D, frame_interval_s=DT, localization_sd_um=s, rng=rng
+        )
     elif cls == "confined":
-        pos = confined_positions(n, N, D_um2_s=D, box_um=np.sqrt(12 * D * 4 * DT), frame_interval_s=DT,
-                                 localization_sd_um=s, rng=rng)
+        pos = confined_positions(
+            n,
+            N,
+            D_um2_s=D,
+            box_um=np.sqrt(12 * D * 4 * DT),
+            frame_interval_s=DT,
+            localization_sd_um=s,
+            rng=rng,
+        )
     elif cls == "directed":
-        pos = directed_positions(n, N, D_um2_s=D, speed_um_s=0.8 * np.sqrt(D / DT), frame_interval_s=DT,
-                                 localization_sd_um=s, rng=rng)
+        pos = directed_positions(
+            n,
+            N,
+            D_um2_s=D,
+            speed_um_s=0.8 * np.sqrt(D / DT),
+            frame_interval_s=DT,
+            localization_sd_um=s,
+            rng=rng,
+        )
     else:
         pos = 0.03 * rng.standard_normal((n, N, 2))
     out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
@@ -179,15 +239,17 @@ def test_each_class_is_recognised_at_300_points(cls):
 def test_confinement_size_and_speed_are_recovered():
     rng = np.random.default_rng(8)
     L = 0.5
-    pos = confined_positions(60, 500, D_um2_s=0.5, box_um=L, frame_interval_s=DT, localization_sd_um=0.02,
-                             rng=rng)
+    pos = confined_positions(
+        60, 500, D_um2_s=0.5, box_um=L, frame_interval_s=DT, localization_sd_um=0.02, rng=rng
+    )
     out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
     conf = out[out.motion_class == "confined"]
     assert len(conf) >= 50
     assert np.median(conf.confinement_um) == pytest.approx(L, rel=0.1)
     v = 1.0
-    pos = directed_positions(60, 300, D_um2_s=0.1, speed_um_s=v, frame_interval_s=DT, localization_sd_um=0.02,
-                             rng=rng)
+    pos = directed_positions(
+        60, 300, D_um2_s=0.1, speed_um_s=v, frame_interval_s=DT, localization_sd_um=0.02, rng=rng
+    )
     out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=0.0)
     d = out[out.motion_class == "directed"]
     assert len(d) >= 55
@@ -210,8 +272,16 @@ def test_bad_input_gets_a_clear_error():
 # -------------------------------------------------------------------------------------------- samples
 def _brownian_sample(rng, n_tracks=30, x=None, drift=None):
     x = rng.uniform(0, 3) if x is None else x
-    pos = brownian_positions(n_tracks, 120, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT,
-                             localization_sd_um=np.sqrt(x * 0.5 * DT), drift_um_s=drift, rng=rng)
+    pos = brownian_positions(
+        n_tracks,
+        120,
+        D_um2_s=0.5,
+        frame_interval_s=DT,
+        exposure_s=DT,
+        localization_sd_um=np.sqrt(x * 0.5 * DT),
+        drift_um_s=drift,
+        rng=rng,
+    )
     return positions_to_tracks(pos, frame_interval_s=DT, lengths=rng.integers(60, 121, n_tracks))
 
 
@@ -233,8 +303,16 @@ def test_fbm_samples_with_alpha_0p6_are_flagged_subdiffusive():
     rng = np.random.default_rng(10)
     hits = 0
     for _ in range(20):
-        pos = fbm_positions(30, 120, alpha=0.6, K_um2_s_alpha=0.5, frame_interval_s=DT, exposure_s=DT,
-                            localization_sd_um=np.sqrt(rng.uniform(0, 3) * 0.5 * DT**0.6), rng=rng)
+        pos = fbm_positions(
+            30,
+            120,
+            alpha=0.6,
+            K_um2_s_alpha=0.5,
+            frame_interval_s=DT,
+            exposure_s=DT,
+            localization_sd_um=np.sqrt(rng.uniform(0, 3) * 0.5 * DT**0.6),
+            rng=rng,
+        )
         m = _motion(_tracks(pos))
         hits += "subdiffusive" in m.flags
         assert m.alpha_ci95[0] <= m.alpha <= m.alpha_ci95[1]

@@ -13,11 +13,23 @@ DT = 0.05
 
 
 def _sample(rng, n_tracks=40, n_points=100, v=(0.0, 0.0), D=0.5, sigma=0.05, ragged=True):
-    pos = brownian_positions(n_tracks, n_points, D_um2_s=D, frame_interval_s=DT, exposure_s=DT,
-                             localization_sd_um=sigma, drift_um_s=list(v), rng=rng)
+    pos = brownian_positions(
+        n_tracks,
+        n_points,
+        D_um2_s=D,
+        frame_interval_s=DT,
+        exposure_s=DT,
+        localization_sd_um=sigma,
+        drift_um_s=list(v),
+        rng=rng,
+    )
     if ragged:
-        return positions_to_tracks(pos, frame_interval_s=DT, lengths=rng.integers(30, n_points + 1, n_tracks),
-                                   first_frames=rng.integers(0, 100, n_tracks))
+        return positions_to_tracks(
+            pos,
+            frame_interval_s=DT,
+            lengths=rng.integers(30, n_points + 1, n_tracks),
+            first_frames=rng.integers(0, 100, n_tracks),
+        )
     return positions_to_tracks(pos, frame_interval_s=DT)
 
 
@@ -52,8 +64,10 @@ def test_no_drift_is_rarely_called_significant():
     # (rate 0.5 % allowed for the approximations of the tests).
     rng = np.random.default_rng(3)
     n = 100
-    hits = sum(estimate_drift(_sample(rng, n_tracks=30, n_points=60), frame_interval_s=DT).significant
-               for _ in range(n))
+    hits = sum(
+        estimate_drift(_sample(rng, n_tracks=30, n_points=60), frame_interval_s=DT).significant
+        for _ in range(n)
+    )
     assert hits <= stats.binom.ppf(0.9999, n, 0.005)
 
 
@@ -100,7 +114,9 @@ def test_a_few_transported_particles_do_not_make_a_drift():
 
 def test_too_few_tracks_are_not_safe_to_subtract():
     rng = np.random.default_rng(0)
-    est = estimate_drift(_sample(rng, n_tracks=4, v=(1.0, 0.0), ragged=False), frame_interval_s=DT, min_tracks=10)
+    est = estimate_drift(
+        _sample(rng, n_tracks=4, v=(1.0, 0.0), ragged=False), frame_interval_s=DT, min_tracks=10
+    )
     assert not est.safe_to_subtract
     assert "4 tracks" in est.reason
 
