@@ -279,3 +279,87 @@ def test_plain_log_lines_when_not_a_terminal_and_bars_on_request(tmp_path, capfd
     run_batch(make_cfg(tmp_path), process=batch_fakes.fake_process, progress="bars", force=True)
     err = capfd.readouterr().err
     assert "stacks: 100%" in err and "6/6" in err
+
+
+# ------------------------------------------------------------------------------ the real pipeline in a batch
+D_TRUE_UM2_S = 0.5
+DT_S = 0.05
+
+
+def make_track_tables(folder: Path, seeds=(0,), *, broken=True) -> Path:
+    """Simulated Brownian track tables (known D) and, optionally, broken tables of every kind."""
+    from msdkit.simulate import brownian_positions, positions_to_tracks
+
+    folder.mkdir(parents=True, exist_ok=True)
+    for i, seed in enumerate(seeds):
+        pos = brownian_positions(30, 60, D_um2_s=D_TRUE_UM2_S, frame_interval_s=DT_S, localization_sd_um=0.02,
+                                 rng=seed)
+        tracks = positions_to_tracks(pos, frame_interval_s=DT_S)[["track", "frame", "x_um", "y_um"]]
+        tracks.to_csv(folder / f"good{i}.csv", index=False)
+    if broken:
+        (folder / "empty.csv").write_bytes(b"")
+        nan = tracks.copy()
+        nan.loc[5, "x_um"] = np.nan
+        nan.to_csv(folder / "nan_filled.csv", index=False)
+        (folder / "not_a_table.csv").write_bytes(bytes(range(256)) * 4)
+        tracks.to_parquet(folder / "truncated.parquet")
+        data = (folder / "truncated.parquet").read_bytes()
+        (folder / "truncated.parquet").write_bytes(data[: len(data) // 2])
+        tracks.iloc[:1].to_csv(folder / "single_position.csv", index=False)
+    return folder
+
+
+def table_cfg(base: Path, kind="serial", n_workers=None, address=None):
+    ex = {"kind": kind, "n_workers": n_workers, "address": address}
+    ex = {k: v for k, v in ex.items() if v is not None}
+    return config_from_dict({"inputs": ["in/*"], "output_dir": "out", "executor": ex,
+                             "acquisition": {"frame_interval_s": DT_S, "exposure_s": 0.0}}, base_dir=base)
+
+
+def test_real_pipeline_one_good_table_among_broken_ones_is_complete_and_exit_code_is_1(tmp_path):
+    from msdkit.io.atomic import file_sha256
+
+    make_track_tables(tmp_path / "in")
+    result = run_batch(table_cfg(tmp_path), progress=False)
+    assert result.exit_code == 1
+    rows = {r.stack: r for r in result.rows}
+    assert {s for s, r in rows.items() if r.status == "ok"} == {"good0"}
+    expect = {"empty": "empty", "nan_filled": "NaN", "not_a_table": "not a text table",
+              "truncated": "not a readable Parquet file", "single_position": "single_position.csv"}
+    for stack, words in expect.items():
+        assert words in rows[stack].error, rows[stack].error
+    good = rows["good0"]
+    assert good.n_warnings == 0
+    # The covariance-based estimator's relative SD is about sqrt(6 / (d N)) for N = 1770 steps in d = 2
+    # dimensions with small localisation error (Vestergaard et al. 2014, Phys. Rev. E 89:022726; from
+    # memory): 4 %. Five SDs: 20 %.
+    assert abs(good.D_um2_s / D_TRUE_UM2_S - 1) < 0.20
+
+    folder = tmp_path / "out" / "good0"
+    summary = json.loads((folder / "summary.json").read_text())
+    for key in ("D_um2_s", "D_ci95_um2_s", "alpha", "alpha_ci95", "radius_nm", "n_tracks", "flags",
+                "viscosity_mpa_s", "temperature_c", "drift_um_s", "provenance"):
+        assert key in summary, key
+    assert summary["provenance"]["input_sha256"] == file_sha256(tmp_path / "in" / "good0.csv")
+    assert summary["D_um2_s"] == pytest.approx(good.D_um2_s, rel=1e-12)
+    assert summary["radius_nm"] == pytest.approx(good.radius_nm, rel=1e-12)
+    assert summary["n_tracks"] == good.n_tracks == 30
+    columns = {"tracks.parquet": ["track", "frame", "time_s", "x_um", "y_um"],
+               "track_fits.csv": ["track", "n_points", "D_um2_s", "alpha", "radius_nm", "motion_class"],
+               "msd_ensemble.csv": ["lag_s", "msd_um2", "sem_um2", "n_tracks"]}
+    for name, expected in columns.items():
+        read = pd.read_parquet if name.endswith(".parquet") else pd.read_csv
+        assert list(read(folder / name).columns[: len(expected)]) == expected, name
+    table = pd.read_csv(tmp_path / "out" / SUMMARY_FILE)
+    assert table.loc[table["stack"] == "good0", "D_um2_s"].item() == pytest.approx(good.D_um2_s, rel=1e-12)
+
+
+@pytest.mark.slow
+def test_real_pipeline_gives_the_same_numbers_in_local_processes_as_serially(tmp_path):
+    make_track_tables(tmp_path / "in", seeds=(1, 2), broken=False)
+    serial = run_batch(table_cfg(tmp_path), output_dir=tmp_path / "serial", progress=False)
+    local = run_batch(table_cfg(tmp_path, kind="local", n_workers=2), output_dir=tmp_path / "local",
+                      progress=False)
+    assert serial.exit_code == local.exit_code == 0
+    pd.testing.assert_frame_equal(_comparable(serial.table()), _comparable(local.table()), check_exact=False,
+                                  rtol=1e-12)
