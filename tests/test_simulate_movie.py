@@ -323,6 +323,25 @@ def test_confined_truth_plateaus_at_L2_over_3(seed):
     assert sq.mean() == pytest.approx(L**2 / 3, abs=5 * np.sqrt(7 / 90) * L**2 / np.sqrt(sq.size))
 
 
+def test_stage_drift_moves_every_truth_position_at_the_drift_velocity():
+    # Constant stage drift shifts all image positions by v t (definition of the recipe's drift_um_s).
+    v = np.array([0.8, -0.5])
+    rec = recipe_from_dict(
+        _scene(
+            n_frames=11,
+            drift_um_s=list(v),
+            populations=[{"count_in_view": 200, "motion": {"model": "brownian", "D_um2_s": 1e-10}}],
+        )
+    )
+    truth, meta = scene_truth(rec, rng=0)
+    inner = _deep_inside(truth, width_um=256 * 0.166, keep_um=1.0)
+    wide = inner.pivot(index="particle", columns="frame", values=["x_um", "y_um"]).dropna()
+    assert len(wide) > 100
+    shift = np.c_[wide["x_um"][10] - wide["x_um"][0], wide["y_um"][10] - wide["y_um"][0]]
+    np.testing.assert_allclose(shift, np.broadcast_to(v * 10 * 0.05, shift.shape), atol=1e-4)
+    assert meta["drift_um_s"] == pytest.approx(list(v))
+
+
 @pytest.mark.parametrize("seed", SEEDS)
 def test_number_in_focus_matches_the_recipe_and_stays_constant(seed):
     # Uniform independent particles: the count in the focal volume is binomial with mean count_in_view
