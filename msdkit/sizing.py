@@ -1,0 +1,822 @@
+"""Size distributions from per-track diffusion coefficients, free of the spread that short tracks fake.
+
+A track of N_s steps measures D with a relative SD of about 1/√(d N_s / 2), so a histogram of per-track sizes of
+identical particles is wide (10 steps: d10/d50/d90 = 0.70/1.03/1.61 × the true size). :func:`size_distribution`
+removes that spread: it finds the number distribution of sizes on a log-spaced grid whose predicted distribution of
+per-track estimates, track by track (each with its own number of steps, localisation error and the camera's motion
+blur), best explains the measured ones, by penalised maximum likelihood.
+
+Per-track estimator (the kernel is exact for it): :func:`lag1_track_estimates` computes, for each track, the mean
+squared lag-1 step per axis m = ⟨Δx²⟩ and D̂ = (m − 2σ²) / (2Δt (1 − 2R)), R = t_E / (6 Δt), with the localisation
+SD σ known (given, or pooled over the sample by the covariance formula of Vestergaard et al. 2014). The increments
+are Gaussian with an MA(1) covariance (variance a = 2DΔt(1 − 2R) + 2σ², neighbour covariance b = 2DΔtR − σ²;
+Berglund 2010), so m is a quadratic form with mean a and variance 2(N_s a² + 2 N_adj b²)/(d N_s²), N_adj the
+number of neighbouring step pairs. Its law is a weighted sum of χ² variables that differs from the Gamma law with
+the same mean and variance only in the third moment; that Gamma is the kernel.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import signal, special, stats
+
+from . import hydro
+from .errors import expected_got
+
+#: Columns of the per-track table from :func:`lag1_track_estimates`.
+LAG1_COLUMNS = ("track", "n_points", "n_steps", "n_adjacent_steps", "mean_sq_step_um2", "sigma_um", "D_um2_s")
+#: Columns of size_distribution.csv.
+SIZE_TABLE_COLUMNS = ("diameter_nm", "D_um2_s", "raw_number_fraction", "number_fraction", "volume_fraction",
+                      "intensity_fraction", "cumulative_number_fraction")
+_QUANTILES = (0.1, 0.5, 0.9)
+_GRID_STEP_LN = 0.03  # grid spacing in ln d (3 %)
+_N_FOLDS = 5
+# Penalty strengths per unit track weight, tried by cross-validation from strong to weak in decades; below
+# _STRENGTH_MIN only while the weakest is still clearly the best, down to _STRENGTH_FLOOR.
+_STRENGTH_MAX, _STRENGTH_MIN, _STRENGTH_FLOOR = 10.0, 1e-6, 1e-8
+_MIN_TRACKS_CV = 50
+_MODE_PROMINENCE = 0.05  # a mode must rise 5 % of the highest density above the valleys beside it
+_MODE_MIN_FRACTION = 0.02
+
+
+def blur_coefficient(frame_interval_s: float, exposure_s: float) -> float:
+    """Motion-blur coefficient R = t_E / (6 Δt) for uniform illumination (Berglund 2010)."""
+    return float(exposure_s) / (6.0 * float(frame_interval_s))
+
+
+def _check_timing(frame_interval_s, exposure_s, n_dims):
+    if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
+        raise ValueError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
+    if not (np.isfinite(exposure_s) and 0 <= exposure_s <= frame_interval_s * (1 + 1e-9)):
+        raise ValueError(expected_got("exposure_s", f"between 0 and frame_interval_s={frame_interval_s}",
+                                      exposure_s, "Give the shutter-open time per frame."))
+    if n_dims not in (1, 2, 3):
+        raise ValueError(expected_got("n_dims", "1, 2 or 3", n_dims, "Use 2 for xy tracking."))
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Per-track estimates
+# ----------------------------------------------------------------------------------------------------------
+def lag1_track_estimates(
+    tracks: pd.DataFrame,
+    *,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    localization_sd_um=None,
+) -> pd.DataFrame:
+    """Per-track D from the mean squared lag-1 step with the localisation offset and blur removed.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Columns track, frame, x_um, y_um (z_um for n_dims=3); an optional column localization_sd_um gives the
+        per-position localisation SD. Only steps between consecutive frames are used (gaps split the steps).
+    frame_interval_s : float, s
+    exposure_s : float, s
+        Shutter-open time (0 = instantaneous); sets R = t_E/(6Δt).
+    n_dims : int, default=2
+    localization_sd_um : float, Series (indexed by track) or dict, µm, optional
+        Static localisation SD per axis. When not given (and not in the table) it is estimated once for the
+        whole sample from all tracks, σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ (Vestergaard et al. 2014), which is
+        unbiased whatever each track's D.
+
+    Returns
+    -------
+    DataFrame
+        Columns track, n_points, n_steps, n_adjacent_steps, mean_sq_step_um2 (per axis), sigma_um, D_um2_s.
+        ``.attrs["sigma_source"]`` says where σ came from. D̂ can be negative for tiny D; keep it.
+
+    Notes
+    -----
+    D̂ = (⟨Δx²⟩ − 2σ²) / (2Δt(1 − 2R)) is unbiased (E⟨Δx²⟩ = 2DΔt(1 − 2R) + 2σ², Berglund 2010) and, for
+    σ² ≪ DΔt, within a few % of the Cramér–Rao bound; its distribution is known exactly, which is what the
+    deconvolution in :func:`size_distribution` needs.
+
+    References
+    ----------
+    A. J. Berglund, Phys. Rev. E 82, 011917 (2010), doi:10.1103/PhysRevE.82.011917.
+    C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014),
+    doi:10.1103/PhysRevE.89.022726.
+    """
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    cols = ["x_um", "y_um", "z_um"][:n_dims]
+    missing = [c for c in ("track", "frame", *cols) if c not in tracks.columns]
+    if missing:
+        raise ValueError(expected_got("the track table", f"columns track, frame, {', '.join(cols)}",
+                                      f"no {missing}", "Convert positions to µm first."))
+    df = tracks.sort_values(["track", "frame"], kind="stable")
+    ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
+    n_tr = ids.size
+    frame = df["frame"].to_numpy(np.int64)
+    pos = df[cols].to_numpy(float)
+    pos = pos - np.nanmean(pos, axis=0) if pos.size else pos  # float64, no large offsets
+    n_points = np.bincount(inv, minlength=n_tr)
+    step_ok = (inv[1:] == inv[:-1]) & (np.diff(frame) == 1)
+    inc = np.diff(pos, axis=0)
+    step_ok &= np.all(np.isfinite(inc), axis=1)
+    sq = np.sum(inc**2, axis=1)
+    owner = inv[:-1]
+    n_steps = np.bincount(owner[step_ok], minlength=n_tr)
+    sum_sq = np.bincount(owner[step_ok], weights=sq[step_ok], minlength=n_tr)
+    adj = step_ok[:-1] & step_ok[1:]
+    prod = np.sum(inc[:-1] * inc[1:], axis=1) if inc.shape[0] > 1 else np.zeros(0)
+    n_adj = np.bincount(owner[:-1][adj], minlength=n_tr) if adj.size else np.zeros(n_tr, int)
+    sum_prod = np.bincount(owner[:-1][adj], weights=prod[adj], minlength=n_tr) if adj.size else np.zeros(n_tr)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m0 = sum_sq / (n_dims * n_steps)
+        m1 = sum_prod / (n_dims * n_adj)
+    R = blur_coefficient(frame_interval_s, exposure_s)
+
+    sigma2 = np.full(n_tr, np.nan)
+    source = "pooled"
+    if localization_sd_um is not None:
+        if np.isscalar(localization_sd_um):
+            sigma2[:] = float(localization_sd_um) ** 2
+        else:
+            mapped = pd.Series(localization_sd_um).reindex(ids).to_numpy(float)
+            sigma2 = mapped**2
+        source = "given"
+    elif "localization_sd_um" in df.columns:
+        s2 = df["localization_sd_um"].to_numpy(float) ** 2
+        good = np.isfinite(s2)
+        sigma2 = np.bincount(inv[good], weights=s2[good], minlength=n_tr) / np.maximum(
+            np.bincount(inv[good], minlength=n_tr), 1)
+        sigma2[np.bincount(inv[good], minlength=n_tr) == 0] = np.nan
+        source = "table"
+    missing_sigma = ~np.isfinite(sigma2)
+    if np.any(missing_sigma):
+        use = (n_adj > 0) & (n_steps > 0)
+        if np.any(use):
+            per_track = R * m0[use] + (2 * R - 1) * m1[use]
+            pooled = max(float(np.sum(n_steps[use] * per_track) / np.sum(n_steps[use])), 0.0)
+        else:
+            pooled = 0.0
+        sigma2[missing_sigma] = pooled
+        if source != "pooled":
+            source += "+pooled"
+    with np.errstate(invalid="ignore"):
+        D = (m0 - 2 * sigma2) / (2 * frame_interval_s * (1 - 2 * R))
+    out = pd.DataFrame({
+        "track": ids, "n_points": n_points.astype(np.int64), "n_steps": n_steps.astype(np.int64),
+        "n_adjacent_steps": n_adj.astype(np.int64), "mean_sq_step_um2": m0, "sigma_um": np.sqrt(sigma2),
+        "D_um2_s": D,
+    })
+    out.attrs["sigma_source"] = source
+    return out
+
+
+def apparent_size_quantiles(n_steps: int, *, n_dims: int = 2, quantiles=_QUANTILES) -> np.ndarray:
+    """Quantiles of per-track sizes of identical particles, in units of the true size ("fake polydispersity").
+
+    Without localisation noise or blur, D̂ from N_s lag-1 steps is Gamma(shape d N_s / 2, scale 2D/(d N_s))
+    (Saxton 1997), so the size d̂ = d D / D̂ has quantile q at d / G_{1−q}.
+
+    Examples
+    --------
+    >>> [round(float(v), 3) for v in apparent_size_quantiles(10)]
+    [0.704, 1.034, 1.607]
+    """
+    k = n_dims * n_steps / 2.0
+    g = stats.gamma(a=k, scale=1.0 / k)
+    return 1.0 / g.ppf(1.0 - np.asarray(quantiles, dtype=float))
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Kernel
+# ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class _Tracks:
+    """Per-track data the kernel needs (arrays of equal length)."""
+
+    y: np.ndarray  # mean squared lag-1 step per axis, µm²
+    n: np.ndarray  # lag-1 steps
+    m: np.ndarray  # neighbouring step pairs
+    s2: np.ndarray  # σ², µm²
+    D: np.ndarray  # D̂, µm²/s
+    weight: np.ndarray
+    n_points: np.ndarray
+
+
+def _gamma_shape_scale(D, tr: _Tracks, dt, R, n_dims):
+    """Shape and scale of the Gamma law of y for true D (broadcast: D over columns, tracks over rows)."""
+    a = 2 * D * dt * (1 - 2 * R) + 2 * tr.s2[:, None]
+    b = 2 * D * dt * R - tr.s2[:, None]
+    n = tr.n[:, None]
+    var = 2 * (n * a**2 + 2 * tr.m[:, None] * b**2) / (n_dims * n**2)
+    return a**2 / var, var / a
+
+
+def _log_kernel(D_grid, tr: _Tracks, dt, R, n_dims) -> np.ndarray:
+    """Log p(y_i | D_k): rows tracks, columns grid."""
+    k, theta = _gamma_shape_scale(D_grid[None, :], tr, dt, R, n_dims)
+    y = tr.y[:, None]
+    return (k - 1) * np.log(y) - y / theta - k * np.log(theta) - special.gammaln(k)
+
+
+def _tracks_from_fits(track_fits, dt, R, n_dims, localization_sd_um, weighting) -> tuple[_Tracks, str, int]:
+    if "D_um2_s" not in track_fits.columns:
+        raise ValueError(expected_got("track_fits", "a D_um2_s column", list(track_fits.columns),
+                                      "Pass the table from lag1_track_estimates (or fit_tracks)."))
+    if "n_steps" in track_fits.columns:
+        n = track_fits["n_steps"].to_numpy(float)
+    elif "n_points" in track_fits.columns:
+        n = track_fits["n_points"].to_numpy(float) - 1
+    else:
+        raise ValueError(expected_got("track_fits", "an n_steps or n_points column", list(track_fits.columns),
+                                      "Pass the table from lag1_track_estimates."))
+    n_points = track_fits["n_points"].to_numpy(float) if "n_points" in track_fits.columns else n + 1
+    m = track_fits["n_adjacent_steps"].to_numpy(float) if "n_adjacent_steps" in track_fits.columns else n - 1
+    exact = "mean_sq_step_um2" in track_fits.columns
+    if localization_sd_um is not None:
+        s = np.full(len(track_fits), float(localization_sd_um))
+    elif "sigma_um" in track_fits.columns:
+        s = track_fits["sigma_um"].to_numpy(float)
+        med = np.nanmedian(np.where(np.isfinite(s) & (s >= 0), s, np.nan)) if np.any(np.isfinite(s)) else 0.0
+        s = np.where(np.isfinite(s) & (s >= 0), s, med if np.isfinite(med) else 0.0)
+    else:
+        s = np.zeros(len(track_fits))
+    s2 = s**2
+    D = track_fits["D_um2_s"].to_numpy(float)
+    y = (track_fits["mean_sq_step_um2"].to_numpy(float) if exact
+         else 2 * dt * (1 - 2 * R) * D + 2 * s2)
+    if weighting == "time":
+        w = n_points.copy()
+    elif weighting == "track":
+        w = np.ones_like(n)
+    else:
+        raise ValueError(expected_got("weighting", "'time' or 'track'", weighting,
+                                      "'time' counts particles as seen at any instant (default)."))
+    ok = np.isfinite(y) & (y > 0) & np.isfinite(n) & (n >= 1) & np.isfinite(D) & np.isfinite(s2)
+    n_dropped = int(np.sum(~ok))
+    m = np.clip(np.where(np.isfinite(m), m, n - 1), 0, None)
+    tr = _Tracks(y=y[ok], n=n[ok], m=m[ok], s2=s2[ok], D=D[ok], weight=w[ok], n_points=n_points[ok])
+    kernel = "lag1 gamma (exact moments)" if exact else "lag1 gamma (D_um2_s taken as a lag-1 estimate)"
+    return tr, kernel, n_dropped
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Penalised maximum likelihood on a log grid
+# ----------------------------------------------------------------------------------------------------------
+class _Basis:
+    """θ(u) = −(u − μ)²/(2 s²) + B c on the grid u = ln d.
+
+    B spans the complement of the quadratics (the null space of the third-difference penalty), in the
+    eigenbasis of the penalty, so the penalty is Σ_j Λ_j c_j² exactly and every log-normal costs nothing.
+    """
+
+    def __init__(self, u: np.ndarray):
+        K = u.size
+        step = float(np.mean(np.diff(u)))
+        ut = (u - u.mean()) / (u.max() - u.min())
+        q, _ = np.linalg.qr(np.stack([np.ones(K), ut, ut**2], axis=1), mode="complete")
+        comp = q[:, 3:]
+        d3 = np.diff(np.eye(K), n=3, axis=0) @ comp
+        lam, vec = np.linalg.eigh(d3.T @ d3)
+        self.u = u
+        self.penalty = np.clip(lam, 0.0, None) / step**5  # integral of the squared third derivative per unit c²
+        self.B = comp @ vec
+
+    def theta(self, mu, log_s, c):
+        return -0.5 * (self.u - mu) ** 2 * np.exp(-2 * log_s) + self.B @ c
+
+
+def _lbfgs(fun, x0, *, max_iter=400, tol=1e-10, memory=10):
+    """Minimise a smooth function with limited-memory BFGS and backtracking (Nocedal & Wright 2006, alg. 7.5).
+
+    Kept in numpy on purpose: tiny problems, no threaded linear-algebra calls per iteration.
+    """
+    x = np.asarray(x0, dtype=float).copy()
+    f, g = fun(x)
+    S: list[np.ndarray] = []
+    Y: list[np.ndarray] = []
+    small = 0
+    for _ in range(max_iter):
+        q = g.copy()
+        alphas = []
+        for s_, y_ in zip(reversed(S), reversed(Y), strict=True):
+            a = (s_ @ q) / (y_ @ s_)
+            alphas.append(a)
+            q -= a * y_
+        if S:
+            q *= (S[-1] @ Y[-1]) / (Y[-1] @ Y[-1])
+        for (s_, y_), a in zip(zip(S, Y, strict=True), reversed(alphas), strict=True):
+            q += s_ * (a - (y_ @ q) / (y_ @ s_))
+        d = -q
+        slope = g @ d
+        if not slope < 0:
+            d, slope = -g, -(g @ g)
+            S.clear()
+            Y.clear()
+        t = 1.0
+        while True:
+            x_new = x + t * d
+            f_new, g_new = fun(x_new)
+            if np.isfinite(f_new) and f_new <= f + 1e-4 * t * slope:
+                break
+            t *= 0.5
+            if t < 1e-12:
+                return x
+        s_, y_ = x_new - x, g_new - g
+        if s_ @ y_ > 1e-12 * np.sqrt((s_ @ s_) * (y_ @ y_)):
+            S.append(s_)
+            Y.append(y_)
+            if len(S) > memory:
+                S.pop(0)
+                Y.pop(0)
+        small = small + 1 if f - f_new <= tol * max(1.0, abs(f)) else 0
+        x, f, g = x_new, f_new, g_new
+        if small >= 3 or np.max(np.abs(g)) < 1e-9:
+            break
+    return x
+
+
+def _softmax(theta):
+    z = np.exp(theta - theta.max())
+    return z / z.sum()
+
+
+def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400):
+    """Maximise (1/W) Σ_i ω_i log Σ_k L_ik w_k − (λ/2) Σ_j Λ_j c_j², w = softmax(θ(μ, ln s, c)).
+
+    c is preconditioned by √(1 + λΛ_j) so that every direction has unit-order curvature. Parameters in and out
+    are (μ, ln s, c) in natural units.
+    """
+    W = weight.sum()
+    u, B, lam = basis.u, basis.B, basis.penalty
+    scale = 1.0 / np.sqrt(1.0 + strength * lam)
+
+    def fun(x):
+        mu, log_s, c = x[0], x[1], x[2:] * scale
+        inv_s2 = np.exp(-2 * log_s)
+        th = -0.5 * (u - mu) ** 2 * inv_s2 + B @ c
+        w = _softmax(th)
+        s = np.maximum(L @ w, 1e-300)
+        gk = L.T @ (weight / s) / W
+        f = -np.sum(weight * np.log(s)) / W + 0.5 * strength * np.sum(lam * c * c)
+        gth = -w * (gk - 1.0)
+        grad = np.empty_like(x)
+        grad[0] = gth @ ((u - mu) * inv_s2)
+        grad[1] = gth @ ((u - mu) ** 2 * inv_s2)
+        grad[2:] = (B.T @ gth + strength * lam * c) * scale
+        return f, grad
+
+    x0 = np.concatenate([params0[:2], params0[2:] / scale])
+    x = _lbfgs(fun, x0, max_iter=max_iter)
+    return np.concatenate([x[:2], x[2:] * scale])
+
+
+def _theta_of(basis: _Basis, params):
+    return basis.theta(params[0], params[1], params[2:])
+
+
+def _heldout_scores(L, row_max, weight, theta):
+    w = _softmax(theta)
+    return weight * (np.log(np.maximum(L @ w, 1e-300)) + row_max)
+
+
+def _lognormal_start(n_grid, tr: _Tracks, D_to_u, step):
+    """Log-normal start (μ, ln s, c = 0): mean and variance of ln size over tracks less the kernel's variance."""
+    pos = tr.D > 0
+    with np.errstate(invalid="ignore"):
+        u = D_to_u(tr.D[pos])
+    ok = np.isfinite(u)
+    u, k, w = u[ok], tr.n[pos][ok] * 1.0, tr.weight[pos][ok]  # k: Gamma shape for d = 2, Var ln D̂ = ψ'(k)
+    mu = float(np.average(u, weights=w))
+    var = float(np.average((u - mu) ** 2, weights=w) - np.average(special.polygamma(1, k)))
+    var = max(var, (2 * step) ** 2)
+    return np.concatenate([[mu, 0.5 * np.log(var)], np.zeros(n_grid - 3)])
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Summaries of a distribution on a grid
+# ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SizeStatistics:
+    """Summary of one weighting of a size distribution (number, volume, intensity or the raw histogram)."""
+
+    modes_nm: tuple[float, ...]
+    mode_fractions: tuple[float, ...]
+    mean_nm: float
+    d10_nm: float
+    d50_nm: float
+    d90_nm: float
+    span: float
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict (non-finite numbers become None)."""
+        return {k: _clean(getattr(self, k)) for k in self.__dataclass_fields__}
+
+
+def _clean(v):
+    if isinstance(v, (tuple, list, np.ndarray)):
+        return [_clean(x) for x in v]
+    if isinstance(v, (float, np.floating)):
+        return float(v) if math.isfinite(v) else None
+    if isinstance(v, np.integer):
+        return int(v)
+    return v
+
+
+_NAN_STATS = SizeStatistics((), (), math.nan, math.nan, math.nan, math.nan, math.nan)
+
+
+def grid_quantiles_nm(diameter_nm, fractions, quantiles=_QUANTILES) -> np.ndarray:
+    """Quantiles of a distribution given as fractions on a log-spaced diameter grid.
+
+    Each grid cell spreads its fraction uniformly in ln d between the midpoints to its neighbours; the CDF is
+    interpolated linearly in ln d.
+    """
+    u = np.log(np.asarray(diameter_nm, dtype=float))
+    f = np.asarray(fractions, dtype=float)
+    f = f / f.sum()
+    edges = np.concatenate([[1.5 * u[0] - 0.5 * u[1]], 0.5 * (u[1:] + u[:-1]), [1.5 * u[-1] - 0.5 * u[-2]]])
+    cdf = np.concatenate([[0.0], np.cumsum(f)])
+    keep = np.concatenate([[True], np.diff(cdf) > 0])  # strictly increasing for interpolation
+    return np.exp(np.interp(np.asarray(quantiles, dtype=float), cdf[keep], edges[keep]))
+
+
+def weighted_fractions(diameter_nm, number_fraction, power: int) -> np.ndarray:
+    """Convert number fractions to d^power weighting (3: volume, 6: Rayleigh intensity; ISO 9276-1)."""
+    d = np.asarray(diameter_nm, dtype=float)
+    q = np.asarray(number_fraction, dtype=float) * (d / d.max()) ** power
+    return q / q.sum()
+
+
+def _modes(diameter_nm, fractions):
+    f = np.asarray(fractions, dtype=float)
+    if f.size < 3 or not np.any(f > 0):
+        return (), ()
+    padded = np.concatenate([[0.0], f, [0.0]])
+    peaks, _ = signal.find_peaks(padded, prominence=_MODE_PROMINENCE * f.max())
+    peaks = peaks - 1
+    if peaks.size == 0:
+        peaks = np.array([int(np.argmax(f))])
+    # split the mass at the lowest point between neighbouring peaks
+    bounds = [0]
+    for p, q in zip(peaks[:-1], peaks[1:], strict=True):
+        bounds.append(p + int(np.argmin(f[p:q + 1])))
+    bounds.append(f.size)
+    masses = np.array([f[bounds[i]:bounds[i + 1]].sum() for i in range(peaks.size)])
+    keep = masses >= _MODE_MIN_FRACTION
+    if not np.any(keep):
+        keep = masses == masses.max()
+    peaks, masses = peaks[keep], masses[keep]
+    masses = masses / masses.sum()
+    d = np.asarray(diameter_nm, dtype=float)
+    return tuple(float(d[p]) for p in peaks), tuple(float(x) for x in masses)
+
+
+def size_statistics(diameter_nm, fractions) -> SizeStatistics:
+    """Modes, mean, D10/D50/D90 and span of a distribution given as fractions on a log diameter grid."""
+    d = np.asarray(diameter_nm, dtype=float)
+    f = np.asarray(fractions, dtype=float)
+    if f.sum() <= 0:
+        return _NAN_STATS
+    f = f / f.sum()
+    d10, d50, d90 = grid_quantiles_nm(d, f)
+    modes, mode_fractions = _modes(d, f)
+    return SizeStatistics(modes_nm=modes, mode_fractions=mode_fractions, mean_nm=float(np.sum(f * d)),
+                          d10_nm=float(d10), d50_nm=float(d50), d90_nm=float(d90),
+                          span=float((d90 - d10) / d50))
+
+
+def _weighted_quantile(values, weights, quantiles):
+    order = np.argsort(values)
+    v, w = values[order], weights[order]
+    cdf = (np.cumsum(w) - 0.5 * w) / w.sum()
+    return np.interp(quantiles, cdf, v)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# The public result and entry point
+# ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class SizeDistribution:
+    """Hydrodynamic size distribution of a sample.
+
+    ``number`` is the deconvolved number-weighted distribution; ``volume`` (∝ d³ q₀) and ``intensity``
+    (∝ d⁶ q₀, Rayleigh scattering) are conversions of it (ISO 9276-1); ``raw`` summarises the histogram of
+    per-track sizes (what a naive tool shows). ``table`` is size_distribution.csv. The sample size
+    (``sample_diameter_nm``) is Stokes–Einstein of the pooled D over all steps, not a mean of sizes.
+    """
+
+    status: str  # ok | too_few_tracks
+    n_tracks: int
+    n_tracks_used: int
+    sample_D_um2_s: float
+    sample_D_ci95_um2_s: tuple[float, float]
+    sample_diameter_nm: float
+    sample_diameter_ci95_nm: tuple[float, float]
+    number: SizeStatistics
+    volume: SizeStatistics
+    intensity: SizeStatistics
+    raw: SizeStatistics
+    table: pd.DataFrame
+    method: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def modes_nm(self) -> tuple[float, ...]:
+        """Modes of the number distribution, nm."""
+        return self.number.modes_nm
+
+    @property
+    def mean_nm(self) -> float:
+        """Number-weighted mean diameter, nm."""
+        return self.number.mean_nm
+
+    @property
+    def d10_nm(self) -> float:
+        """Number-weighted D10, nm."""
+        return self.number.d10_nm
+
+    @property
+    def d50_nm(self) -> float:
+        """Number-weighted D50 (median), nm."""
+        return self.number.d50_nm
+
+    @property
+    def d90_nm(self) -> float:
+        """Number-weighted D90, nm."""
+        return self.number.d90_nm
+
+    @property
+    def span(self) -> float:
+        """(D90 − D10) / D50 of the number distribution."""
+        return self.number.span
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready summary (for summary.json); the grid itself is in ``table``."""
+        return {
+            "status": self.status,
+            "n_tracks": self.n_tracks,
+            "n_tracks_used": self.n_tracks_used,
+            "sample_D_um2_s": _clean(self.sample_D_um2_s),
+            "sample_D_ci95_um2_s": _clean(self.sample_D_ci95_um2_s),
+            "sample_diameter_nm": _clean(self.sample_diameter_nm),
+            "sample_diameter_ci95_nm": _clean(self.sample_diameter_ci95_nm),
+            "number": self.number.to_dict(),
+            "volume": self.volume.to_dict(),
+            "intensity": self.intensity.to_dict(),
+            "raw_per_track": self.raw.to_dict(),
+            "method": {k: _clean(v) for k, v in self.method.items()},
+        }
+
+
+def _empty_table() -> pd.DataFrame:
+    return pd.DataFrame({c: pd.Series(dtype="float64") for c in SIZE_TABLE_COLUMNS})
+
+
+def size_distribution(
+    track_fits: pd.DataFrame,
+    *,
+    temperature_c: float,
+    viscosity_mpa_s: float,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    localization_sd_um: float | None = None,
+    wall_distance_um: float | None = None,
+    weighting: str = "time",
+    diameter_grid_nm: np.ndarray | None = None,
+    rng=0,
+) -> SizeDistribution:
+    """Number, volume and intensity size distributions of a sample, deconvolved from per-track estimates.
+
+    Parameters
+    ----------
+    track_fits : DataFrame
+        One row per track, best the table of :func:`lag1_track_estimates` (columns n_steps, n_adjacent_steps,
+        mean_sq_step_um2, sigma_um, D_um2_s, n_points): the kernel is then exact. Any table with D_um2_s and
+        n_points (and sigma_um) works, its D being treated as a lag-1 estimate (too-narrow kernel, and so some
+        residual spread, if it came from a noisier estimator).
+    temperature_c : float, °C
+    viscosity_mpa_s : float, mPa·s
+    frame_interval_s, exposure_s : float, s
+    n_dims : int, default=2
+    localization_sd_um : float, µm, optional
+        Overrides the table's sigma_um.
+    wall_distance_um : float, µm, optional
+        Distance of the particle centres from the coverslip: the grid maps size to measured D with Faxén's
+        parallel factor.
+    weighting : {"time", "track"}, default="time"
+        "time" weights each track by its number of positions: the count of particles seen at any instant, which
+        does not favour particles that cross the field (or lose their track) more often — small, fast ones.
+        "track" counts every track once.
+    diameter_grid_nm : array, nm, optional
+        Log-spaced grid; by default 2 % steps spanning the per-track estimates with margins.
+    rng : int, Generator or None, default=0
+        Assigns tracks to the cross-validation folds.
+
+    Returns
+    -------
+    SizeDistribution
+
+    Notes
+    -----
+    The number fractions w_k on the grid maximise Σ_i ω_i log Σ_k w_k p(y_i | D_k, N_i, σ_i, R) − (λW/2) ∫
+    (d³ ln w / du³)² du, u = ln d, with the Gamma kernel of the module docstring. The penalty is zero for every
+    log-normal (ln w quadratic in u), so strong penalties fit the best log-normal and weak ones allow several
+    modes. λ is chosen from 1e-9…10 by 5-fold cross-validation on held-out tracks' log-likelihood, with the
+    one-standard-error rule (the strongest penalty within one SE of the best score; Hastie, Tibshirani & Friedman
+    2009, §7.10). Below 50 tracks the best log-normal is used. The expectation–maximisation likelihood of Dempster
+    et al. (1977) is the objective; it is maximised by quasi-Newton steps on θ = ln w.
+
+    References
+    ----------
+    A. P. Dempster, N. M. Laird & D. B. Rubin, J. R. Stat. Soc. B 39, 1 (1977).
+    P. Saveyn et al., J. Colloid Interface Sci. 352, 593 (2010), doi:10.1016/j.jcis.2010.09.006.
+    K. S. Silmore, X. Gong, M. S. Strano & J. W. Swan, ACS Nano 13, 3940 (2019), doi:10.1021/acsnano.8b07215.
+    ISO 9276-1:1998, Representation of results of particle size analysis.
+    """
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    dt = float(frame_interval_s)
+    R = blur_coefficient(dt, exposure_s)
+    se_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
+    tr, kernel, n_dropped = _tracks_from_fits(track_fits, dt, R, n_dims, localization_sd_um, weighting)
+    n_total = len(track_fits)
+    n_used = int(tr.y.size)
+    method: dict[str, Any] = {"kernel": kernel, "weighting": weighting, "n_dims": n_dims,
+                              "blur_coefficient": R, "localization_sd_um": float(np.sqrt(np.median(tr.s2)))
+                              if n_used else math.nan, "tracks_without_estimate": n_dropped,
+                              "wall_distance_um": wall_distance_um}
+
+    def to_bulk(D):
+        if wall_distance_um is None:
+            return np.asarray(D, dtype=float)
+        return np.asarray(hydro.wall_corrected_D_um2_s(D, wall_distance_um=wall_distance_um, **se_kw))
+
+    # sample D: pooled over all steps, with a sandwich SE across tracks
+    if n_used >= 2:
+        Dbar = float(np.sum(tr.n * tr.D) / np.sum(tr.n))
+        se = float(np.sqrt(np.sum(tr.n**2 * (tr.D - Dbar) ** 2) / np.sum(tr.n) ** 2 * n_used / (n_used - 1)))
+        D_ci = (Dbar - hydro.Z95 * se, Dbar + hydro.Z95 * se)
+    else:
+        Dbar, D_ci = (float(tr.D[0]) if n_used else math.nan), (math.nan, math.nan)
+    bulk = to_bulk([Dbar, D_ci[1], D_ci[0]])
+    with np.errstate(invalid="ignore"):
+        diam = np.asarray(hydro.stokes_einstein_diameter_nm(bulk, **se_kw), dtype=float)
+    sample_d, sample_ci = float(diam[0]), (float(diam[1]), float(diam[2]) if D_ci[0] > 0 else math.inf)
+
+    if n_used < 3 or np.sum(tr.D > 0) < 2:
+        return SizeDistribution(
+            status="too_few_tracks", n_tracks=n_total, n_tracks_used=n_used, sample_D_um2_s=Dbar,
+            sample_D_ci95_um2_s=D_ci, sample_diameter_nm=sample_d, sample_diameter_ci95_nm=sample_ci,
+            number=_NAN_STATS, volume=_NAN_STATS, intensity=_NAN_STATS, raw=_NAN_STATS, table=_empty_table(),
+            method=method)
+
+    # per-track naive sizes (for the raw histogram)
+    pos = tr.D > 0
+    raw_d = np.full(n_used, np.nan)
+    with np.errstate(invalid="ignore"):
+        raw_d[pos] = hydro.stokes_einstein_diameter_nm(to_bulk(tr.D[pos]), **se_kw)
+    raw_ok = np.isfinite(raw_d)
+
+    # grid
+    if diameter_grid_nm is None:
+        qlo, qhi = np.quantile(tr.D[pos], [0.005, 0.995])
+        d_small = float(hydro.stokes_einstein_diameter_nm(3.0 * qhi, **se_kw))
+        d_large = float(hydro.stokes_einstein_diameter_nm(qlo / 3.0, **se_kw))
+        if wall_distance_um is not None:
+            d_small *= 0.5
+            d_large = min(d_large, 2e3 * wall_distance_um * 0.9)
+        n_grid = int(np.clip(np.ceil(np.log(d_large / d_small) / _GRID_STEP_LN) + 1, 40, 400))
+        grid = np.exp(np.linspace(np.log(d_small), np.log(d_large), n_grid))
+    else:
+        grid = np.sort(np.asarray(diameter_grid_nm, dtype=float))
+    u = np.log(grid)
+    step = float(np.mean(np.diff(u)))
+    D_grid = np.asarray(hydro.stokes_einstein_D_um2_s(grid / 2, **se_kw), dtype=float)
+    if wall_distance_um is not None:
+        D_grid = D_grid * np.asarray(hydro.faxen_parallel_factor(wall_distance_um * 1e3 / (grid / 2)))
+
+    logk = _log_kernel(D_grid, tr, dt, R, n_dims)
+    row_max = logk.max(axis=1)
+    L = np.exp(logk - row_max[:, None])
+    weight = tr.weight / tr.weight.mean()
+    basis = _Basis(u)
+    params0 = _lognormal_start(grid.size, tr, lambda D: np.log(hydro.stokes_einstein_diameter_nm(
+        to_bulk(D), **se_kw)), step)
+
+    if n_used >= _MIN_TRACKS_CV:
+        g = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
+        fold = g.permutation(n_used) % _N_FOLDS
+        fold_params = [params0] * _N_FOLDS
+        strengths: list[float] = []
+        rows: list[np.ndarray] = []
+        lam = _STRENGTH_MAX
+        while True:  # strongest first, warm starts towards weaker penalties
+            row = np.empty(n_used)
+            for f in range(_N_FOLDS):
+                train, test = fold != f, fold == f
+                fold_params[f] = _fit_penalised(L[train], weight[train], basis, lam, fold_params[f])
+                row[test] = _heldout_scores(L[test], row_max[test], weight[test], _theta_of(basis, fold_params[f]))
+            strengths.append(lam)
+            rows.append(row)
+            lam /= 10.0
+            if lam < _STRENGTH_MIN * (1 - 1e-9):
+                # go on only while the weakest penalty is still clearly the best (sharp, separate modes)
+                gain = rows[-1] - rows[-2]
+                if not (lam >= _STRENGTH_FLOOR * (1 - 1e-9)
+                        and gain.sum() > np.sqrt(n_used * np.var(gain))):
+                    break
+        scores = np.array(rows)
+        scores = np.where(np.isfinite(scores), scores, -1e12)
+        total = scores.sum(axis=1)
+        best = int(np.argmax(total))
+        diff_se = np.sqrt(n_used * np.var(scores - scores[best], axis=1))
+        chosen = int(np.min(np.flatnonzero(total >= total[best] - diff_se)))
+        rule = f"{_N_FOLDS}-fold cross-validation, one-SE rule"
+        method["cv_log_likelihood"] = [float(v) for v in total]
+        method["cv_strengths"] = strengths
+    else:
+        strengths, chosen = [_STRENGTH_MAX], 0
+        rule = f"best log-normal (fewer than {_MIN_TRACKS_CV} tracks)"
+    params = params0
+    for lam in strengths[:chosen + 1]:
+        params = _fit_penalised(L, weight, basis, lam, params)
+    theta = _theta_of(basis, params)
+    number = _softmax(theta)
+    method.update({"regularization_strength": float(strengths[chosen]), "regularization_rule": rule,
+                   "grid_step_ln": step, "n_grid": int(grid.size)})
+
+    # raw histogram on the same cells
+    edges = np.concatenate([[u[0] - step / 2], 0.5 * (u[1:] + u[:-1]), [u[-1] + step / 2]])
+    idx = np.clip(np.searchsorted(edges, np.log(raw_d[raw_ok])) - 1, 0, grid.size - 1)
+    raw_hist = np.bincount(idx, weights=tr.weight[raw_ok], minlength=grid.size)
+    raw_hist = raw_hist / raw_hist.sum()
+
+    volume = weighted_fractions(grid, number, 3)
+    intensity = weighted_fractions(grid, number, 6)
+    table = pd.DataFrame({
+        "diameter_nm": grid, "D_um2_s": D_grid, "raw_number_fraction": raw_hist, "number_fraction": number,
+        "volume_fraction": volume, "intensity_fraction": intensity,
+        "cumulative_number_fraction": np.cumsum(number),
+    })
+    rq = _weighted_quantile(raw_d[raw_ok], tr.weight[raw_ok], np.array(_QUANTILES))
+    raw_modes = _modes(grid, raw_hist)
+    raw = SizeStatistics(modes_nm=raw_modes[0], mode_fractions=raw_modes[1],
+                         mean_nm=float(np.average(raw_d[raw_ok], weights=tr.weight[raw_ok])),
+                         d10_nm=float(rq[0]), d50_nm=float(rq[1]), d90_nm=float(rq[2]),
+                         span=float((rq[2] - rq[0]) / rq[1]))
+    return SizeDistribution(
+        status="ok", n_tracks=n_total, n_tracks_used=n_used, sample_D_um2_s=Dbar, sample_D_ci95_um2_s=D_ci,
+        sample_diameter_nm=sample_d, sample_diameter_ci95_nm=sample_ci,
+        number=size_statistics(grid, number), volume=size_statistics(grid, volume),
+        intensity=size_statistics(grid, intensity), raw=raw, table=table, method=method)
+
+
+def track_sizes_nm(
+    track_fits: pd.DataFrame,
+    *,
+    temperature_c: float,
+    viscosity_mpa_s: float,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    localization_sd_um: float | None = None,
+    wall_distance_um: float | None = None,
+) -> pd.DataFrame:
+    """Per-track diameters with the short-track bias removed.
+
+    1/D̂ of a Gamma(k) estimate is biased high by k/(k − 1) (k = d N_s/2 without noise), so a single track's
+    naive size d(D̂) is too large by that factor on average; ``diameter_nm`` multiplies it by (k − 1)/k, k from
+    the kernel at D̂ (NaN when k ≤ 1 or D̂ ≤ 0). Still use the pooled D or :func:`size_distribution` for samples.
+
+    Returns
+    -------
+    DataFrame with columns track, diameter_nm, radius_nm, naive_diameter_nm (in the row order of track_fits).
+    """
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    dt = float(frame_interval_s)
+    R = blur_coefficient(dt, exposure_s)
+    n = (track_fits["n_steps"] if "n_steps" in track_fits.columns else track_fits["n_points"] - 1).to_numpy(float)
+    m = (track_fits["n_adjacent_steps"].to_numpy(float) if "n_adjacent_steps" in track_fits.columns else n - 1)
+    if localization_sd_um is not None:
+        s2 = np.full(n.size, float(localization_sd_um) ** 2)
+    elif "sigma_um" in track_fits.columns:
+        s2 = np.nan_to_num(track_fits["sigma_um"].to_numpy(float), nan=0.0) ** 2
+    else:
+        s2 = np.zeros(n.size)
+    D = track_fits["D_um2_s"].to_numpy(float)
+    tr = _Tracks(y=np.ones(n.size), n=np.maximum(n, 1), m=np.clip(m, 0, None), s2=s2, D=D, weight=np.ones(n.size),
+                 n_points=n + 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        k, _ = _gamma_shape_scale(np.where(D > 0, D, np.nan)[:, None], tr, dt, R, n_dims)
+        k = k[:, 0]
+        D0 = np.where(D > 0, D, np.nan)
+        if wall_distance_um is not None:
+            D0 = np.asarray(hydro.wall_corrected_D_um2_s(D0, wall_distance_um=wall_distance_um,
+                                                         temperature_c=temperature_c,
+                                                         viscosity_mpa_s=viscosity_mpa_s))
+        naive = np.asarray(hydro.stokes_einstein_diameter_nm(D0, temperature_c=temperature_c,
+                                                             viscosity_mpa_s=viscosity_mpa_s), dtype=float)
+        corrected = np.where((k > 1) & (n >= 1), naive * (k - 1) / k, np.nan)
+    track_ids = track_fits["track"].to_numpy() if "track" in track_fits.columns else np.arange(n.size)
+    return pd.DataFrame({"track": track_ids, "diameter_nm": corrected, "radius_nm": corrected / 2,
+                         "naive_diameter_nm": naive})

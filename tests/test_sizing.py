@@ -1,0 +1,225 @@
+"""Size distributions: fake polydispersity, the lag-1 kernel, weightings and deconvolution on known truth."""
+
+import json
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import special, stats
+
+from msdkit import hydro, sizing
+from msdkit.simulate import brownian_positions, positions_to_tracks
+
+DT, EXPOSURE, SIGMA, T_C = 1 / 30, 0.015, 0.025, 25.0  # 30 fps, 15 ms exposure, 25 nm localisation error
+ETA = hydro.water_viscosity_mpa_s(T_C)
+KW = dict(temperature_c=T_C, viscosity_mpa_s=ETA, frame_interval_s=DT, exposure_s=EXPOSURE)
+
+
+def D_of(diameter_nm):
+    return hydro.stokes_einstein_D_um2_s(np.asarray(diameter_nm, float) / 2, temperature_c=T_C,
+                                         viscosity_mpa_s=ETA)
+
+
+def simulate(diameters_nm, *, rng, steps=(5, 30), exposure_s=EXPOSURE, sigma_um=SIGMA, D_scale=1.0):
+    g = np.random.default_rng(rng)
+    n = len(diameters_nm)
+    n_steps = g.integers(steps[0], steps[1] + 1, n)
+    pos = brownian_positions(n, steps[1] + 1, D_um2_s=D_of(diameters_nm) * D_scale, frame_interval_s=DT,
+                             exposure_s=exposure_s, localization_sd_um=sigma_um, rng=g)
+    return positions_to_tracks(pos, frame_interval_s=DT, lengths=n_steps + 1)
+
+
+def test_fake_polydispersity_check_values_for_10_steps():
+    # METHODS.md (computed): N_s = 10 → apparent d10/d50/d90 = 0.704/1.034/1.607 × true
+    assert sizing.apparent_size_quantiles(10) == pytest.approx([0.704, 1.034, 1.607], abs=5e-4)
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_naive_per_track_sizes_of_identical_particles_spread_as_the_gamma_law_predicts(seed):
+    # Saxton 1997: D̂ ~ Gamma(N_s, D/N_s) in 2D; the fraction of sizes below each predicted quantile is binomial.
+    n = 3000
+    tracks = simulate(np.full(n, 100.0), rng=seed, steps=(10, 10), exposure_s=0.0, sigma_um=0.0)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=0.0, localization_sd_um=0.0)
+    naive = hydro.stokes_einstein_diameter_nm(est["D_um2_s"].to_numpy(), temperature_c=T_C, viscosity_mpa_s=ETA)
+    for q, ratio in zip((0.1, 0.5, 0.9), sizing.apparent_size_quantiles(10), strict=True):
+        frac = np.mean(naive < 100.0 * ratio)
+        assert abs(frac - q) < 4 * math.sqrt(q * (1 - q) / n)
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_lag1_estimator_is_unbiased_with_blur_and_localisation_noise(seed):
+    # E⟨Δx²⟩ = 2DΔt(1 − 2R) + 2σ² (Berglund 2010); SE from the kernel's variance.
+    tracks = simulate(np.full(2000, 100.0), rng=seed, steps=(12, 12))
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    D0 = float(D_of(100.0))
+    se = D0 * math.sqrt(1.02 / 12 / len(est))
+    assert abs(est["D_um2_s"].mean() - D0) < 4.5 * se
+    assert est.attrs["sigma_source"] == "given"
+
+
+def test_kernel_variance_matches_the_spread_of_simulated_lag1_statistics():
+    # MA(1) increments (Berglund 2010): Var m = 2(N a² + 2(N−1) b²)/(d N²); Gamma kurtosis 6/k sets the tolerance.
+    n_tr, n_s = 6000, 8
+    tracks = simulate(np.full(n_tr, 100.0), rng=7, steps=(n_s, n_s), sigma_um=0.06)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=0.06)
+    R = sizing.blur_coefficient(DT, EXPOSURE)
+    tr, kernel, _ = sizing._tracks_from_fits(est, DT, R, 2, None, "track")
+    assert kernel.startswith("lag1 gamma (exact")
+    k, theta = sizing._gamma_shape_scale(np.array([[float(D_of(100.0))]]), tr, DT, R, 2)
+    pred_mean, pred_var = float(k[0, 0] * theta[0, 0]), float(k[0, 0] * theta[0, 0] ** 2)
+    y = est["mean_sq_step_um2"].to_numpy()
+    assert abs(y.mean() - pred_mean) < 4 * math.sqrt(pred_var / n_tr)
+    rel_se = math.sqrt((2 + 6 / k[0, 0]) / n_tr)
+    assert abs(y.var() / pred_var - 1) < 4 * rel_se
+
+
+def test_pooled_localisation_error_is_recovered_when_not_given():
+    # Vestergaard 2014: σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ is unbiased; SE from the scatter of 20 groups.
+    sigma = 0.04
+    tracks = simulate(np.full(4000, 400.0), rng=11, steps=(40, 40), sigma_um=sigma)
+    groups = []
+    for g in range(20):
+        part = tracks[tracks["track"] % 20 == g]
+        est = sizing.lag1_track_estimates(part, frame_interval_s=DT, exposure_s=EXPOSURE)
+        assert est.attrs["sigma_source"] == "pooled"
+        groups.append(est["sigma_um"].iloc[0] ** 2)
+    groups = np.array(groups)
+    assert abs(groups.mean() - sigma**2) < 5 * groups.std(ddof=1) / math.sqrt(groups.size)
+
+
+def test_hatch_choate_conversions_of_a_lognormal_number_distribution():
+    # Hatch & Choate 1929 (METHODS.md, computed): CMD 100 nm, σ_g 1.2 → number 79.16/100.00/126.32,
+    # volume 87.46/110.49/139.57, span 0.4716; intensity (d⁶) median 100 exp(6 ln² 1.2) = 122.08.
+    d = np.exp(np.linspace(np.log(30), np.log(400), 4000))
+    number = stats.norm.pdf(np.log(d), np.log(100.0), np.log(1.2))
+    n = sizing.size_statistics(d, number)
+    v = sizing.size_statistics(d, sizing.weighted_fractions(d, number, 3))
+    i = sizing.size_statistics(d, sizing.weighted_fractions(d, number, 6))
+    assert (n.d10_nm, n.d50_nm, n.d90_nm) == pytest.approx((79.16, 100.00, 126.32), abs=0.02)
+    assert (v.d10_nm, v.d50_nm, v.d90_nm) == pytest.approx((87.46, 110.49, 139.57), abs=0.02)
+    assert i.d50_nm == pytest.approx(100 * math.exp(6 * math.log(1.2) ** 2), abs=0.02)
+    for s in (n, v, i):
+        assert s.span == pytest.approx(0.4716, abs=2e-4)
+    # modes are read on the ln d axis, where a log-normal peaks at its median (Hatch & Choate 1929)
+    assert n.modes_nm == pytest.approx((100.0,), rel=2e-3)
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_deconvolution_recovers_a_monodisperse_size_from_short_tracks(seed):
+    # Known truth (100 nm, 5–30 steps, blur and noise): the raw histogram is wide, the deconvolved one narrow.
+    tracks = simulate(np.full(600, 100.0), rng=seed)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    dist = sizing.size_distribution(est, **KW)
+    assert dist.status == "ok"
+    # D50 SE ≈ 1/√(Σ N_s) ≈ 1.0 %; 3 % is ≥ 3 SE
+    assert dist.d50_nm == pytest.approx(100.0, rel=0.03)
+    assert dist.sample_diameter_nm == pytest.approx(100.0, rel=0.03)
+    assert dist.raw.span > 0.4
+    assert dist.span < 0.2
+    assert len(dist.modes_nm) == 1
+
+
+def test_deconvolution_separates_an_80_plus_250_nm_mixture():
+    g = np.random.default_rng(21)
+    truth = np.where(g.random(600) < 0.5, 80.0, 250.0)
+    tracks = simulate(truth, rng=22)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    dist = sizing.size_distribution(est, **KW)
+    assert len(dist.modes_nm) == 2
+    assert dist.modes_nm[0] == pytest.approx(80.0, rel=0.1)
+    assert dist.modes_nm[1] == pytest.approx(250.0, rel=0.1)
+    # binomial SD of the true fraction is 0.02; allow 0.1 as in the benchmark target
+    assert dist.number.mode_fractions[0] == pytest.approx(np.mean(truth == 80.0), abs=0.1)
+
+
+def test_sample_size_averages_D_while_a_mean_of_track_sizes_is_biased_high():
+    # single-track d̂ is biased high by d N_s/(d N_s − 2) (METHODS.md); pooled D is not.
+    tracks = simulate(np.full(1500, 100.0), rng=5, steps=(5, 8))
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    sizes = sizing.track_sizes_nm(est, **KW)
+    naive_mean = np.nanmean(sizes["naive_diameter_nm"])
+    corrected_mean = np.nanmean(sizes["diameter_nm"])
+    n_mean = est["n_steps"].mean()
+    assert naive_mean > 100.0 * (1 + 0.5 / n_mean)  # bias ≈ 1/(N_s − 1) ≈ 17 %
+    se = np.nanstd(sizes["diameter_nm"]) / math.sqrt(len(sizes))
+    assert abs(corrected_mean - 100.0) < 4 * se + 1.0  # +1 nm: Gamma approximation of the offset-shifted law
+    dist = sizing.size_distribution(est, **KW)
+    se_d = 100.0 / math.sqrt(est["n_steps"].sum())
+    assert abs(dist.sample_diameter_nm - 100.0) < 4 * se_d
+
+
+def test_expected_inverse_of_a_gamma_estimate_gives_the_short_track_bias_factor():
+    # E[1/D̂] = k/((k − 1) D) for D̂ ~ Gamma(k, D/k) (standard χ² algebra)
+    k = 10.0
+    x = np.linspace(1e-4, 10, 200001)
+    mean_inv = np.trapezoid(stats.gamma.pdf(x, a=k, scale=1 / k) / x, x)
+    assert mean_inv == pytest.approx(k / (k - 1), rel=1e-6)
+    assert special.polygamma(1, k) == pytest.approx(1 / k + 1 / (2 * k**2), rel=0.01)
+
+
+def test_wall_distance_enters_the_size_grid_through_faxen():
+    # Faxén (h/r = 2 → 0.7214): particles 0.1 µm from the wall diffuse 28 % slower but are sized right.
+    d_true, h_um = 100.0, 0.1
+    tracks = simulate(np.full(400, d_true), rng=9, D_scale=float(hydro.faxen_parallel_factor(2.0)))
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    plain = sizing.size_distribution(est, **KW)
+    walled = sizing.size_distribution(est, wall_distance_um=h_um, **KW)
+    assert plain.d50_nm > 120.0
+    assert walled.d50_nm == pytest.approx(d_true, rel=0.04)
+    assert walled.sample_diameter_nm == pytest.approx(d_true, rel=0.04)
+
+
+def test_size_table_and_summary_follow_the_output_contract():
+    tracks = simulate(np.full(80, 100.0), rng=2)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
+    dist = sizing.size_distribution(est, **KW)
+    assert tuple(dist.table.columns) == sizing.SIZE_TABLE_COLUMNS
+    for col in ("raw_number_fraction", "number_fraction", "volume_fraction", "intensity_fraction"):
+        assert dist.table[col].sum() == pytest.approx(1.0)
+    summary = json.loads(json.dumps(dist.to_dict()))
+    assert set(summary) >= {"sample_diameter_nm", "number", "volume", "intensity", "raw_per_track", "method"}
+    assert summary["number"]["d50_nm"] == pytest.approx(dist.d50_nm)
+    assert dist.volume.d50_nm >= dist.number.d50_nm
+
+
+def test_fewer_than_50_tracks_fall_back_to_the_best_lognormal():
+    tracks = simulate(np.full(30, 100.0), rng=4)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
+    dist = sizing.size_distribution(est, **KW)
+    assert dist.status == "ok"
+    assert "log-normal" in dist.method["regularization_rule"]
+
+
+def test_two_tracks_are_too_few_and_say_so():
+    tracks = simulate(np.full(2, 100.0), rng=4)
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
+    dist = sizing.size_distribution(est, **KW)
+    assert dist.status == "too_few_tracks"
+    assert math.isnan(dist.d50_nm)
+    assert json.dumps(dist.to_dict())
+
+
+def test_gaps_split_steps_and_are_not_counted_as_lag_one():
+    tracks = pd.DataFrame({"track": [0] * 5, "frame": [0, 1, 2, 4, 5], "x_um": [0.0, 1, 2, 3, 4],
+                           "y_um": [0.0] * 5})
+    est = sizing.lag1_track_estimates(tracks, frame_interval_s=1.0, exposure_s=0.0, localization_sd_um=0.0)
+    assert int(est["n_steps"].iloc[0]) == 3
+    assert int(est["n_adjacent_steps"].iloc[0]) == 1
+    assert est["mean_sq_step_um2"].iloc[0] == pytest.approx(3 / 6)
+
+
+@pytest.mark.parametrize(
+    ("table", "match"),
+    [(pd.DataFrame({"track": [0], "n_points": [5]}), "D_um2_s"),
+     (pd.DataFrame({"track": [0], "D_um2_s": [1.0]}), "n_steps or n_points")],
+)
+def test_size_distribution_rejects_tables_without_the_needed_columns(table, match):
+    with pytest.raises(ValueError, match=match):
+        sizing.size_distribution(table, **KW)
+
+
+def test_lag1_estimates_reject_tracks_without_positions_in_um():
+    with pytest.raises(ValueError, match="columns track, frame, x_um, y_um"):
+        sizing.lag1_track_estimates(pd.DataFrame({"track": [0], "frame": [0], "x_px": [1.0]}),
+                                    frame_interval_s=DT, exposure_s=0.0)
