@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import tifffile
-from test_batch import _comparable, make_cfg, make_inputs
+from test_batch import _comparable, make_cfg, make_inputs, make_track_tables, table_cfg
 
 from msdkit.batch import run_batch
 from msdkit.errors import ConfigError
@@ -41,6 +41,20 @@ def test_dask_scheduler_on_loopback_gives_the_same_table_as_serial(tmp_path, sch
     for stack in ("good0", "good1", "good2"):
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "serial" / stack / "tracks.parquet"),
                                       pd.read_parquet(tmp_path / "dask" / stack / "tracks.parquet"))
+
+
+def test_real_pipeline_on_loopback_scheduler_gives_same_D_and_radius_as_serial(tmp_path, scheduler_address):
+    make_track_tables(tmp_path / "in", seeds=(3,), broken=False)
+    serial = run_batch(table_cfg(tmp_path), output_dir=tmp_path / "serial", progress=False)
+    cfg = table_cfg(tmp_path, kind="dask", address=scheduler_address)
+    dask = run_batch(cfg, output_dir=tmp_path / "dask", progress=False)
+    assert serial.exit_code == dask.exit_code == 0
+    for a, b in zip(serial.rows, dask.rows, strict=True):
+        assert a.stack == b.stack
+        assert b.D_um2_s == pytest.approx(a.D_um2_s, rel=1e-12)
+        assert b.radius_nm == pytest.approx(a.radius_nm, rel=1e-12)
+    pd.testing.assert_frame_equal(_comparable(serial.table()), _comparable(dask.table()), check_exact=False,
+                                  rtol=1e-12)
 
 
 def test_dask_batch_resumes_a_local_batch(tmp_path, scheduler_address, monkeypatch):
