@@ -52,7 +52,7 @@ ALPHA_GRID = np.round(np.arange(0.05, 1.951, 0.05), 10)
 #: fine near 0 and logarithmic beyond; slightly negative values (down to −0.25, where the spectrum stays
 #: positive) are allowed so that a small noise level is not biased by the r ≥ 0 boundary (the same reason an
 #: MSD fit lets its offset go negative); a negative value may remove at most half of the signal spectrum.
-_NOISE_U_STEP = 0.35
+_NOISE_U_STEP = 0.25
 NOISE_U_GRID = np.arange(np.arcsinh(-0.25 / 0.01), np.arcsinh(1e3 / 0.01) + 1e-9, _NOISE_U_STEP)
 NOISE_RATIO_GRID = 0.01 * np.sinh(NOISE_U_GRID)
 _N_TAU = 20
@@ -279,14 +279,20 @@ def _bank(n_steps: int, exposure_ratio: float) -> _Bank:
 
 
 def _parabola(y0, y1, y2):
-    """Vertex offset (in grid steps, clipped to ±1) and value of the parabola through three points."""
+    """Vertex offset (in grid steps, within ±½) and value of the parabola through three points.
+
+    The gain over the middle point is capped at the smaller of the two drops to its neighbours: a
+    strongly asymmetric profile (e.g. next to the edge of the allowed noise range) is not a parabola, and
+    an uncapped vertex would overshoot.
+    """
     den = y0 - 2.0 * y1 + y2
     ok = np.isfinite(den) & (den < -1e-12)
     safe = np.where(ok, den, -1.0)
     diff = np.where(ok, y0 - y2, 0.0)
-    off = np.where(ok, np.clip(0.5 * diff / safe, -1.0, 1.0), 0.0)
-    val = np.where(ok, y1 - 0.25 * diff * off, y1)
-    return off, np.maximum(val, y1)
+    off = np.where(ok, np.clip(0.5 * diff / safe, -0.5, 0.5), 0.0)
+    gain = np.where(ok, -0.25 * diff * off, 0.0)
+    cap = np.where(ok, np.minimum(y1 - y0, y1 - y2), 0.0)
+    return off, y1 + np.clip(gain, 0.0, np.maximum(cap, 0.0))
 
 
 def _profile_noise(ll: np.ndarray):
