@@ -31,14 +31,22 @@ def simulate(diameters_nm, rng, *, n_steps=None, steps=(5, 30)):
     g = np.random.default_rng(rng)
     n = len(diameters_nm)
     n_steps = g.integers(steps[0], steps[1] + 1, n) if n_steps is None else np.asarray(n_steps)
-    pos = brownian_positions(n, int(n_steps.max()) + 1, D_um2_s=D_of(diameters_nm), frame_interval_s=DT,
-                             exposure_s=EXPOSURE, localization_sd_um=SIGMA, rng=g)
+    pos = brownian_positions(
+        n,
+        int(n_steps.max()) + 1,
+        D_um2_s=D_of(diameters_nm),
+        frame_interval_s=DT,
+        exposure_s=EXPOSURE,
+        localization_sd_um=SIGMA,
+        rng=g,
+    )
     return positions_to_tracks(pos, frame_interval_s=DT, lengths=n_steps + 1)
 
 
 def analyse(tracks, *, known_sigma=True, **kw):
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE,
-                                      localization_sd_um=SIGMA if known_sigma else None)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA if known_sigma else None
+    )
     t0 = time.perf_counter()
     dist = sizing.size_distribution(est, **KW, **kw)
     return dist, time.perf_counter() - t0
@@ -50,33 +58,44 @@ def q3(s):
 
 def monodisperse(seeds):
     print("\n## Monodisperse 100 nm, 1,000 tracks of 5–30 steps (targets: span ≤ 0.15, D50 within 3 %)")
-    print("seed sigma    | raw d10    d50    d90  span | deconv d10 d50    d90  span | D50 err | sample | s   | ok")
+    print(
+        "seed sigma    | raw d10    d50    d90  span | deconv d10 d50    d90  span | D50 err | sample "
+        "| s   | ok"
+    )
     for seed in seeds:
         tracks = simulate(np.full(1000, 100.0), seed)
         for known in (True, False):
             d, t = analyse(tracks, known_sigma=known)
             err = d.d50_nm / 100 - 1
             ok = d.span <= 0.15 and abs(err) <= 0.03
-            print(f"{seed:4d} {'given ' if known else 'pooled'} | {q3(d.raw)} {d.raw.span:5.3f} | "
-                  f"{q3(d.number)} {d.span:5.3f} | {err:+6.1%} | {d.sample_diameter_nm:6.1f} | {t:4.1f} | "
-                  f"{'yes' if ok else 'NO'}")
+            print(
+                f"{seed:4d} {'given ' if known else 'pooled'} | {q3(d.raw)} {d.raw.span:5.3f} | "
+                f"{q3(d.number)} {d.span:5.3f} | {err:+6.1%} | {d.sample_diameter_nm:6.1f} | {t:4.1f} | "
+                f"{'yes' if ok else 'NO'}"
+            )
 
 
 def lognormal(seeds):
     print("\n## Log-normal CMD 100 nm, σ_g 1.2 (target: D10/D50/D90 within 5 % of 79.16/100.00/126.32)")
-    print("seed | raw d10    d50    d90 | deconv d10 d50    d90 | errors (%)           | volume d50 | s   | ok")
+    print(
+        "seed | raw d10    d50    d90 | deconv d10 d50    d90 | errors (%)           | volume d50 | s   | ok"
+    )
     for seed in seeds:
         g = np.random.default_rng(1000 + seed)
         d_true = np.exp(np.log(100.0) + np.log(1.2) * g.standard_normal(1000))
         d, t = analyse(simulate(d_true, seed))
         errs = np.array([d.d10_nm, d.d50_nm, d.d90_nm]) / np.array(HATCH_CHOATE) - 1
         ok = np.all(np.abs(errs) <= 0.05)
-        print(f"{seed:4d} | {q3(d.raw)} | {q3(d.number)} | {' '.join(f'{e:+5.1%}' for e in errs)} | "
-              f"{d.volume.d50_nm:10.1f} | {t:4.1f} | {'yes' if ok else 'NO'}")
+        print(
+            f"{seed:4d} | {q3(d.raw)} | {q3(d.number)} | {' '.join(f'{e:+5.1%}' for e in errs)} | "
+            f"{d.volume.d50_nm:10.1f} | {t:4.1f} | {'yes' if ok else 'NO'}"
+        )
 
 
 def bimodal(seeds):
-    print("\n## Mixture 80 + 250 nm, half and half by number (targets: modes within 10 %, fractions within 0.1)")
+    print(
+        "\n## Mixture 80 + 250 nm, half and half by number (targets: modes within 10 %, fractions within 0.1)"
+    )
     print("seed | raw d10    d50    d90 | modes (nm)      | fractions   | true frac 80 | strength | s   | ok")
     for seed in seeds:
         g = np.random.default_rng(2000 + seed)
@@ -84,11 +103,18 @@ def bimodal(seeds):
         d, t = analyse(simulate(d_true, seed))
         modes, fr = d.number.modes_nm, d.number.mode_fractions
         true80 = float(np.mean(d_true == 80.0))
-        ok = (len(modes) == 2 and abs(modes[0] / 80 - 1) <= 0.1 and abs(modes[1] / 250 - 1) <= 0.1
-              and abs(fr[0] - true80) <= 0.1)
-        print(f"{seed:4d} | {q3(d.raw)} | {' '.join(f'{m:6.1f}' for m in modes):15s} | "
-              f"{' '.join(f'{f:.3f}' for f in fr):11s} | {true80:12.3f} | {d.method['regularization_strength']:8.0e} "
-              f"| {t:4.1f} | {'yes' if ok else 'NO'}")
+        ok = (
+            len(modes) == 2
+            and abs(modes[0] / 80 - 1) <= 0.1
+            and abs(modes[1] / 250 - 1) <= 0.1
+            and abs(fr[0] - true80) <= 0.1
+        )
+        print(
+            f"{seed:4d} | {q3(d.raw)} | {' '.join(f'{m:6.1f}' for m in modes):15s} | "
+            f"{' '.join(f'{f:.3f}' for f in fr):11s} | {true80:12.3f} | "
+            f"{d.method['regularization_strength']:8.0e} "
+            f"| {t:4.1f} | {'yes' if ok else 'NO'}"
+        )
 
 
 def short_track_bias():
@@ -100,9 +126,15 @@ def short_track_bias():
 
 
 def filter_bias(seed=0):
-    print("\n## Minimum-length filters: 80 + 250 nm, equal numbers in the sample, tracks end when particles leave a "
-          "3 µm focal slab")
-    print("(visits ∝ D, mean visit L²/(12 D): 80 nm ≈ 3.7 frames, 250 nm ≈ 11.5 frames; true 80 nm fraction 0.50)")
+    print(
+        "\n## Minimum-length filters: 80 + 250 nm, equal numbers in the sample, tracks end when particles "
+        "leave a "
+        "3 µm focal slab"
+    )
+    print(
+        "(visits ∝ D, mean visit L²/(12 D): 80 nm ≈ 3.7 frames, 250 nm ≈ 11.5 frames; "
+        "true 80 nm fraction 0.50)"
+    )
     print("min points | tracks | 80 nm fraction: by time | by track")
     g = np.random.default_rng(seed)
     slab_um = 3.0

@@ -1,18 +1,20 @@
 """Size distributions from per-track diffusion coefficients, free of the spread that short tracks fake.
 
-A track of N_s steps measures D with a relative SD of about 1/√(d N_s / 2), so a histogram of per-track sizes of
-identical particles is wide (10 steps: d10/d50/d90 = 0.70/1.03/1.61 × the true size). :func:`size_distribution`
-removes that spread: it finds the number distribution of sizes on a log-spaced grid whose predicted distribution of
-per-track estimates, track by track (each with its own number of steps, localisation error and the camera's motion
-blur), best explains the measured ones, by penalised maximum likelihood.
+A track of N_s steps measures D with a relative SD of about 1/√(d N_s / 2), so a histogram of per-track
+sizes of identical particles is wide (10 steps: d10/d50/d90 = 0.70/1.03/1.61 × the true size).
+:func:`size_distribution` removes that spread: it finds the number distribution of sizes on a log-spaced
+grid whose predicted distribution of per-track estimates, track by track (each with its own number of steps,
+localisation error and the camera's motion blur), best explains the measured ones, by penalised maximum
+likelihood.
 
-Per-track estimator (the kernel is exact for it): :func:`lag1_track_estimates` computes, for each track, the mean
-squared lag-1 step per axis m = ⟨Δx²⟩ and D̂ = (m − 2σ²) / (2Δt (1 − 2R)), R = t_E / (6 Δt), with the localisation
-SD σ known (given, or pooled over the sample by the covariance formula of Vestergaard et al. 2014). The increments
-are Gaussian with an MA(1) covariance (variance a = 2DΔt(1 − 2R) + 2σ², neighbour covariance b = 2DΔtR − σ²;
-Berglund 2010), so m is a quadratic form with mean a and variance 2(N_s a² + 2 N_adj b²)/(d N_s²), N_adj the
-number of neighbouring step pairs. Its law is a weighted sum of χ² variables that differs from the Gamma law with
-the same mean and variance only in the third moment; that Gamma is the kernel.
+Per-track estimator (the kernel is exact for it): :func:`lag1_track_estimates` computes, for each track, the
+mean squared lag-1 step per axis m = ⟨Δx²⟩ and D̂ = (m − 2σ²) / (2Δt (1 − 2R)), R = t_E / (6 Δt), with the
+localisation SD σ known (given, or pooled over the sample by the covariance formula of Vestergaard et al.
+2014). The increments are Gaussian with an MA(1) covariance (variance a = 2DΔt(1 − 2R) + 2σ², neighbour
+covariance b = 2DΔtR − σ²; Berglund 2010), so m is a quadratic form with mean a and variance 2(N_s a² + 2
+N_adj b²)/(d N_s²), N_adj the number of neighbouring step pairs. Its law is a weighted sum of χ² variables
+that differs from the Gamma law with the same mean and variance only in the third moment; that Gamma is the
+kernel.
 """
 
 from __future__ import annotations
@@ -23,23 +25,35 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import signal, special, stats
+from scipy import signal, stats
 
 from . import hydro
+from ._size_fit import (
+    _Basis,
+    _gamma_shape_scale,
+    _log_kernel,
+    _lognormal_start,
+    _softmax,
+    _Tracks,
+    _tracks_from_fits,
+    choose_and_fit,
+)
 from .errors import expected_got
 
 #: Columns of the per-track table from :func:`lag1_track_estimates`.
 LAG1_COLUMNS = ("track", "n_points", "n_steps", "n_adjacent_steps", "mean_sq_step_um2", "sigma_um", "D_um2_s")
 #: Columns of size_distribution.csv.
-SIZE_TABLE_COLUMNS = ("diameter_nm", "D_um2_s", "raw_number_fraction", "number_fraction", "volume_fraction",
-                      "intensity_fraction", "cumulative_number_fraction")
+SIZE_TABLE_COLUMNS = (
+    "diameter_nm",
+    "D_um2_s",
+    "raw_number_fraction",
+    "number_fraction",
+    "volume_fraction",
+    "intensity_fraction",
+    "cumulative_number_fraction",
+)
 _QUANTILES = (0.1, 0.5, 0.9)
 _GRID_STEP_LN = 0.03  # grid spacing in ln d (3 %)
-_N_FOLDS = 5
-# Penalty strengths per unit track weight, tried by cross-validation from strong to weak in decades; below
-# _STRENGTH_MIN only while the weakest is still clearly the best, down to _STRENGTH_FLOOR.
-_STRENGTH_MAX, _STRENGTH_MIN, _STRENGTH_FLOOR = 10.0, 1e-6, 1e-8
-_MIN_TRACKS_CV = 50
 _MODE_PROMINENCE = 0.05  # a mode must rise 5 % of the highest density above the valleys beside it
 _MODE_MIN_FRACTION = 0.02
 
@@ -53,8 +67,14 @@ def _check_timing(frame_interval_s, exposure_s, n_dims):
     if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
         raise ValueError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
     if not (np.isfinite(exposure_s) and 0 <= exposure_s <= frame_interval_s * (1 + 1e-9)):
-        raise ValueError(expected_got("exposure_s", f"between 0 and frame_interval_s={frame_interval_s}",
-                                      exposure_s, "Give the shutter-open time per frame."))
+        raise ValueError(
+            expected_got(
+                "exposure_s",
+                f"between 0 and frame_interval_s={frame_interval_s}",
+                exposure_s,
+                "Give the shutter-open time per frame.",
+            )
+        )
     if n_dims not in (1, 2, 3):
         raise ValueError(expected_got("n_dims", "1, 2 or 3", n_dims, "Use 2 for xy tracking."))
 
@@ -108,8 +128,14 @@ def lag1_track_estimates(
     cols = ["x_um", "y_um", "z_um"][:n_dims]
     missing = [c for c in ("track", "frame", *cols) if c not in tracks.columns]
     if missing:
-        raise ValueError(expected_got("the track table", f"columns track, frame, {', '.join(cols)}",
-                                      f"no {missing}", "Convert positions to µm first."))
+        raise ValueError(
+            expected_got(
+                "the track table",
+                f"columns track, frame, {', '.join(cols)}",
+                f"no {missing}",
+                "Convert positions to µm first.",
+            )
+        )
     df = tracks.sort_values(["track", "frame"], kind="stable")
     ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
     n_tr = ids.size
@@ -146,7 +172,8 @@ def lag1_track_estimates(
         s2 = df["localization_sd_um"].to_numpy(float) ** 2
         good = np.isfinite(s2)
         sigma2 = np.bincount(inv[good], weights=s2[good], minlength=n_tr) / np.maximum(
-            np.bincount(inv[good], minlength=n_tr), 1)
+            np.bincount(inv[good], minlength=n_tr), 1
+        )
         sigma2[np.bincount(inv[good], minlength=n_tr) == 0] = np.nan
         source = "table"
     missing_sigma = ~np.isfinite(sigma2)
@@ -162,11 +189,17 @@ def lag1_track_estimates(
             source += "+pooled"
     with np.errstate(invalid="ignore"):
         D = (m0 - 2 * sigma2) / (2 * frame_interval_s * (1 - 2 * R))
-    out = pd.DataFrame({
-        "track": ids, "n_points": n_points.astype(np.int64), "n_steps": n_steps.astype(np.int64),
-        "n_adjacent_steps": n_adj.astype(np.int64), "mean_sq_step_um2": m0, "sigma_um": np.sqrt(sigma2),
-        "D_um2_s": D,
-    })
+    out = pd.DataFrame(
+        {
+            "track": ids,
+            "n_points": n_points.astype(np.int64),
+            "n_steps": n_steps.astype(np.int64),
+            "n_adjacent_steps": n_adj.astype(np.int64),
+            "mean_sq_step_um2": m0,
+            "sigma_um": np.sqrt(sigma2),
+            "D_um2_s": D,
+        }
+    )
     out.attrs["sigma_source"] = source
     return out
 
@@ -185,212 +218,6 @@ def apparent_size_quantiles(n_steps: int, *, n_dims: int = 2, quantiles=_QUANTIL
     k = n_dims * n_steps / 2.0
     g = stats.gamma(a=k, scale=1.0 / k)
     return 1.0 / g.ppf(1.0 - np.asarray(quantiles, dtype=float))
-
-
-# ----------------------------------------------------------------------------------------------------------
-# Kernel
-# ----------------------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class _Tracks:
-    """Per-track data the kernel needs (arrays of equal length)."""
-
-    y: np.ndarray  # mean squared lag-1 step per axis, µm²
-    n: np.ndarray  # lag-1 steps
-    m: np.ndarray  # neighbouring step pairs
-    s2: np.ndarray  # σ², µm²
-    D: np.ndarray  # D̂, µm²/s
-    weight: np.ndarray
-    n_points: np.ndarray
-
-
-def _gamma_shape_scale(D, tr: _Tracks, dt, R, n_dims):
-    """Shape and scale of the Gamma law of y for true D (broadcast: D over columns, tracks over rows)."""
-    a = 2 * D * dt * (1 - 2 * R) + 2 * tr.s2[:, None]
-    b = 2 * D * dt * R - tr.s2[:, None]
-    n = tr.n[:, None]
-    var = 2 * (n * a**2 + 2 * tr.m[:, None] * b**2) / (n_dims * n**2)
-    return a**2 / var, var / a
-
-
-def _log_kernel(D_grid, tr: _Tracks, dt, R, n_dims) -> np.ndarray:
-    """Log p(y_i | D_k): rows tracks, columns grid."""
-    k, theta = _gamma_shape_scale(D_grid[None, :], tr, dt, R, n_dims)
-    y = tr.y[:, None]
-    return (k - 1) * np.log(y) - y / theta - k * np.log(theta) - special.gammaln(k)
-
-
-def _tracks_from_fits(track_fits, dt, R, n_dims, localization_sd_um, weighting) -> tuple[_Tracks, str, int]:
-    if "D_um2_s" not in track_fits.columns:
-        raise ValueError(expected_got("track_fits", "a D_um2_s column", list(track_fits.columns),
-                                      "Pass the table from lag1_track_estimates (or fit_tracks)."))
-    if "n_steps" in track_fits.columns:
-        n = track_fits["n_steps"].to_numpy(float)
-    elif "n_points" in track_fits.columns:
-        n = track_fits["n_points"].to_numpy(float) - 1
-    else:
-        raise ValueError(expected_got("track_fits", "an n_steps or n_points column", list(track_fits.columns),
-                                      "Pass the table from lag1_track_estimates."))
-    n_points = track_fits["n_points"].to_numpy(float) if "n_points" in track_fits.columns else n + 1
-    m = track_fits["n_adjacent_steps"].to_numpy(float) if "n_adjacent_steps" in track_fits.columns else n - 1
-    exact = "mean_sq_step_um2" in track_fits.columns
-    if localization_sd_um is not None:
-        s = np.full(len(track_fits), float(localization_sd_um))
-    elif "sigma_um" in track_fits.columns:
-        s = track_fits["sigma_um"].to_numpy(float)
-        med = np.nanmedian(np.where(np.isfinite(s) & (s >= 0), s, np.nan)) if np.any(np.isfinite(s)) else 0.0
-        s = np.where(np.isfinite(s) & (s >= 0), s, med if np.isfinite(med) else 0.0)
-    else:
-        s = np.zeros(len(track_fits))
-    s2 = s**2
-    D = track_fits["D_um2_s"].to_numpy(float)
-    y = (track_fits["mean_sq_step_um2"].to_numpy(float) if exact
-         else 2 * dt * (1 - 2 * R) * D + 2 * s2)
-    if weighting == "time":
-        w = n_points.copy()
-    elif weighting == "track":
-        w = np.ones_like(n)
-    else:
-        raise ValueError(expected_got("weighting", "'time' or 'track'", weighting,
-                                      "'time' counts particles as seen at any instant (default)."))
-    ok = np.isfinite(y) & (y > 0) & np.isfinite(n) & (n >= 1) & np.isfinite(D) & np.isfinite(s2)
-    n_dropped = int(np.sum(~ok))
-    m = np.clip(np.where(np.isfinite(m), m, n - 1), 0, None)
-    tr = _Tracks(y=y[ok], n=n[ok], m=m[ok], s2=s2[ok], D=D[ok], weight=w[ok], n_points=n_points[ok])
-    kernel = "lag1 gamma (exact moments)" if exact else "lag1 gamma (D_um2_s taken as a lag-1 estimate)"
-    return tr, kernel, n_dropped
-
-
-# ----------------------------------------------------------------------------------------------------------
-# Penalised maximum likelihood on a log grid
-# ----------------------------------------------------------------------------------------------------------
-class _Basis:
-    """θ(u) = −(u − μ)²/(2 s²) + B c on the grid u = ln d.
-
-    B spans the complement of the quadratics (the null space of the third-difference penalty), in the
-    eigenbasis of the penalty, so the penalty is Σ_j Λ_j c_j² exactly and every log-normal costs nothing.
-    """
-
-    def __init__(self, u: np.ndarray):
-        K = u.size
-        step = float(np.mean(np.diff(u)))
-        ut = (u - u.mean()) / (u.max() - u.min())
-        q, _ = np.linalg.qr(np.stack([np.ones(K), ut, ut**2], axis=1), mode="complete")
-        comp = q[:, 3:]
-        d3 = np.diff(np.eye(K), n=3, axis=0) @ comp
-        lam, vec = np.linalg.eigh(d3.T @ d3)
-        self.u = u
-        self.penalty = np.clip(lam, 0.0, None) / step**5  # integral of the squared third derivative per unit c²
-        self.B = comp @ vec
-
-    def theta(self, mu, log_s, c):
-        return -0.5 * (self.u - mu) ** 2 * np.exp(-2 * log_s) + self.B @ c
-
-
-def _lbfgs(fun, x0, *, max_iter=400, tol=1e-10, memory=10):
-    """Minimise a smooth function with limited-memory BFGS and backtracking (Nocedal & Wright 2006, alg. 7.5).
-
-    Kept in numpy on purpose: tiny problems, no threaded linear-algebra calls per iteration.
-    """
-    x = np.asarray(x0, dtype=float).copy()
-    f, g = fun(x)
-    S: list[np.ndarray] = []
-    Y: list[np.ndarray] = []
-    small = 0
-    for _ in range(max_iter):
-        q = g.copy()
-        alphas = []
-        for s_, y_ in zip(reversed(S), reversed(Y), strict=True):
-            a = (s_ @ q) / (y_ @ s_)
-            alphas.append(a)
-            q -= a * y_
-        if S:
-            q *= (S[-1] @ Y[-1]) / (Y[-1] @ Y[-1])
-        for (s_, y_), a in zip(zip(S, Y, strict=True), reversed(alphas), strict=True):
-            q += s_ * (a - (y_ @ q) / (y_ @ s_))
-        d = -q
-        slope = g @ d
-        if not slope < 0:
-            d, slope = -g, -(g @ g)
-            S.clear()
-            Y.clear()
-        t = 1.0
-        while True:
-            x_new = x + t * d
-            f_new, g_new = fun(x_new)
-            if np.isfinite(f_new) and f_new <= f + 1e-4 * t * slope:
-                break
-            t *= 0.5
-            if t < 1e-12:
-                return x
-        s_, y_ = x_new - x, g_new - g
-        if s_ @ y_ > 1e-12 * np.sqrt((s_ @ s_) * (y_ @ y_)):
-            S.append(s_)
-            Y.append(y_)
-            if len(S) > memory:
-                S.pop(0)
-                Y.pop(0)
-        small = small + 1 if f - f_new <= tol * max(1.0, abs(f)) else 0
-        x, f, g = x_new, f_new, g_new
-        if small >= 3 or np.max(np.abs(g)) < 1e-9:
-            break
-    return x
-
-
-def _softmax(theta):
-    z = np.exp(theta - theta.max())
-    return z / z.sum()
-
-
-def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400):
-    """Maximise (1/W) Σ_i ω_i log Σ_k L_ik w_k − (λ/2) Σ_j Λ_j c_j², w = softmax(θ(μ, ln s, c)).
-
-    c is preconditioned by √(1 + λΛ_j) so that every direction has unit-order curvature. Parameters in and out
-    are (μ, ln s, c) in natural units.
-    """
-    W = weight.sum()
-    u, B, lam = basis.u, basis.B, basis.penalty
-    scale = 1.0 / np.sqrt(1.0 + strength * lam)
-
-    def fun(x):
-        mu, log_s, c = x[0], x[1], x[2:] * scale
-        inv_s2 = np.exp(-2 * log_s)
-        th = -0.5 * (u - mu) ** 2 * inv_s2 + B @ c
-        w = _softmax(th)
-        s = np.maximum(L @ w, 1e-300)
-        gk = L.T @ (weight / s) / W
-        f = -np.sum(weight * np.log(s)) / W + 0.5 * strength * np.sum(lam * c * c)
-        gth = -w * (gk - 1.0)
-        grad = np.empty_like(x)
-        grad[0] = gth @ ((u - mu) * inv_s2)
-        grad[1] = gth @ ((u - mu) ** 2 * inv_s2)
-        grad[2:] = (B.T @ gth + strength * lam * c) * scale
-        return f, grad
-
-    x0 = np.concatenate([params0[:2], params0[2:] / scale])
-    x = _lbfgs(fun, x0, max_iter=max_iter)
-    return np.concatenate([x[:2], x[2:] * scale])
-
-
-def _theta_of(basis: _Basis, params):
-    return basis.theta(params[0], params[1], params[2:])
-
-
-def _heldout_scores(L, row_max, weight, theta):
-    w = _softmax(theta)
-    return weight * (np.log(np.maximum(L @ w, 1e-300)) + row_max)
-
-
-def _lognormal_start(n_grid, tr: _Tracks, D_to_u, step):
-    """Log-normal start (μ, ln s, c = 0): mean and variance of ln size over tracks less the kernel's variance."""
-    pos = tr.D > 0
-    with np.errstate(invalid="ignore"):
-        u = D_to_u(tr.D[pos])
-    ok = np.isfinite(u)
-    u, k, w = u[ok], tr.n[pos][ok] * 1.0, tr.weight[pos][ok]  # k: Gamma shape for d = 2, Var ln D̂ = ψ'(k)
-    mu = float(np.average(u, weights=w))
-    var = float(np.average((u - mu) ** 2, weights=w) - np.average(special.polygamma(1, k)))
-    var = max(var, (2 * step) ** 2)
-    return np.concatenate([[mu, 0.5 * np.log(var)], np.zeros(n_grid - 3)])
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -460,9 +287,9 @@ def _modes(diameter_nm, fractions):
     # split the mass at the lowest point between neighbouring peaks
     bounds = [0]
     for p, q in zip(peaks[:-1], peaks[1:], strict=True):
-        bounds.append(p + int(np.argmin(f[p:q + 1])))
+        bounds.append(p + int(np.argmin(f[p : q + 1])))
     bounds.append(f.size)
-    masses = np.array([f[bounds[i]:bounds[i + 1]].sum() for i in range(peaks.size)])
+    masses = np.array([f[bounds[i] : bounds[i + 1]].sum() for i in range(peaks.size)])
     keep = masses >= _MODE_MIN_FRACTION
     if not np.any(keep):
         keep = masses == masses.max()
@@ -481,9 +308,15 @@ def size_statistics(diameter_nm, fractions) -> SizeStatistics:
     f = f / f.sum()
     d10, d50, d90 = grid_quantiles_nm(d, f)
     modes, mode_fractions = _modes(d, f)
-    return SizeStatistics(modes_nm=modes, mode_fractions=mode_fractions, mean_nm=float(np.sum(f * d)),
-                          d10_nm=float(d10), d50_nm=float(d50), d90_nm=float(d90),
-                          span=float((d90 - d10) / d50))
+    return SizeStatistics(
+        modes_nm=modes,
+        mode_fractions=mode_fractions,
+        mean_nm=float(np.sum(f * d)),
+        d10_nm=float(d10),
+        d50_nm=float(d50),
+        d90_nm=float(d90),
+        span=float((d90 - d10) / d50),
+    )
 
 
 def _weighted_quantile(values, weights, quantiles):
@@ -586,7 +419,7 @@ def size_distribution(
     diameter_grid_nm: np.ndarray | None = None,
     rng=0,
 ) -> SizeDistribution:
-    """Number, volume and intensity size distributions of a sample, deconvolved from per-track estimates.
+    """Deconvolve per-track estimates into the number, volume and intensity size distributions of a sample.
 
     Parameters
     ----------
@@ -605,11 +438,11 @@ def size_distribution(
         Distance of the particle centres from the coverslip: the grid maps size to measured D with Faxén's
         parallel factor.
     weighting : {"time", "track"}, default="time"
-        "time" weights each track by its number of positions: the count of particles seen at any instant, which
-        does not favour particles that cross the field (or lose their track) more often — small, fast ones.
-        "track" counts every track once.
+        "time" weights each track by its number of positions: the count of particles seen at any instant,
+        which does not favour particles that cross the field (or lose their track) more often — small, fast
+        ones. "track" counts every track once.
     diameter_grid_nm : array, nm, optional
-        Log-spaced grid; by default 2 % steps spanning the per-track estimates with margins.
+        Log-spaced grid; by default 3 % steps spanning the per-track estimates with margins.
     rng : int, Generator or None, default=0
         Assigns tracks to the cross-validation folds.
 
@@ -619,13 +452,18 @@ def size_distribution(
 
     Notes
     -----
-    The number fractions w_k on the grid maximise Σ_i ω_i log Σ_k w_k p(y_i | D_k, N_i, σ_i, R) − (λW/2) ∫
-    (d³ ln w / du³)² du, u = ln d, with the Gamma kernel of the module docstring. The penalty is zero for every
-    log-normal (ln w quadratic in u), so strong penalties fit the best log-normal and weak ones allow several
-    modes. λ is chosen from 1e-9…10 by 5-fold cross-validation on held-out tracks' log-likelihood, with the
-    one-standard-error rule (the strongest penalty within one SE of the best score; Hastie, Tibshirani & Friedman
-    2009, §7.10). Below 50 tracks the best log-normal is used. The expectation–maximisation likelihood of Dempster
-    et al. (1977) is the objective; it is maximised by quasi-Newton steps on θ = ln w.
+    The number fractions w_k on the grid maximise Σ_i ω_i log Σ_k w_k p(y_i | D_k, N_i, σ_i, R) − (λW/2)
+    ∫ (d³ ln w / du³)² du, u = ln d, with the Gamma kernel of the module docstring. The penalty is zero for
+    every log-normal (ln w quadratic in u), so strong penalties fit the best log-normal and weak ones allow
+    several modes. λ is chosen by 5-fold cross-validation on held-out tracks' log-likelihood, over decades
+    from 10 down to 1e-6 (on to 1e-8 while the weakest keeps winning clearly), with the one-SE rule (the
+    strongest penalty within one SE of the best score; Hastie, Tibshirani & Friedman 2009, §7.10). Below
+    50 tracks the best log-normal is used. The objective is the mixture likelihood that
+    expectation–maximisation (Dempster et al. 1977) maximises; here by quasi-Newton steps on θ = ln w.
+
+    Modes are maxima of the density on the ln d axis (a log-normal peaks at its median there) that rise at
+    least 5 % of the highest density above the valleys beside them and hold at least 2 % of the number;
+    ``mode_fractions`` split the distribution at the lowest point between neighbouring modes.
 
     References
     ----------
@@ -641,10 +479,15 @@ def size_distribution(
     tr, kernel, n_dropped = _tracks_from_fits(track_fits, dt, R, n_dims, localization_sd_um, weighting)
     n_total = len(track_fits)
     n_used = int(tr.y.size)
-    method: dict[str, Any] = {"kernel": kernel, "weighting": weighting, "n_dims": n_dims,
-                              "blur_coefficient": R, "localization_sd_um": float(np.sqrt(np.median(tr.s2)))
-                              if n_used else math.nan, "tracks_without_estimate": n_dropped,
-                              "wall_distance_um": wall_distance_um}
+    method: dict[str, Any] = {
+        "kernel": kernel,
+        "weighting": weighting,
+        "n_dims": n_dims,
+        "blur_coefficient": R,
+        "localization_sd_um": float(np.sqrt(np.median(tr.s2))) if n_used else math.nan,
+        "tracks_without_estimate": n_dropped,
+        "wall_distance_um": wall_distance_um,
+    }
 
     def to_bulk(D):
         if wall_distance_um is None:
@@ -665,10 +508,20 @@ def size_distribution(
 
     if n_used < 3 or np.sum(tr.D > 0) < 2:
         return SizeDistribution(
-            status="too_few_tracks", n_tracks=n_total, n_tracks_used=n_used, sample_D_um2_s=Dbar,
-            sample_D_ci95_um2_s=D_ci, sample_diameter_nm=sample_d, sample_diameter_ci95_nm=sample_ci,
-            number=_NAN_STATS, volume=_NAN_STATS, intensity=_NAN_STATS, raw=_NAN_STATS, table=_empty_table(),
-            method=method)
+            status="too_few_tracks",
+            n_tracks=n_total,
+            n_tracks_used=n_used,
+            sample_D_um2_s=Dbar,
+            sample_D_ci95_um2_s=D_ci,
+            sample_diameter_nm=sample_d,
+            sample_diameter_ci95_nm=sample_ci,
+            number=_NAN_STATS,
+            volume=_NAN_STATS,
+            intensity=_NAN_STATS,
+            raw=_NAN_STATS,
+            table=_empty_table(),
+            method=method,
+        )
 
     # per-track naive sizes (for the raw histogram)
     pos = tr.D > 0
@@ -700,50 +553,14 @@ def size_distribution(
     L = np.exp(logk - row_max[:, None])
     weight = tr.weight / tr.weight.mean()
     basis = _Basis(u)
-    params0 = _lognormal_start(grid.size, tr, lambda D: np.log(hydro.stokes_einstein_diameter_nm(
-        to_bulk(D), **se_kw)), step)
+    params0 = _lognormal_start(
+        grid.size, tr, lambda D: np.log(hydro.stokes_einstein_diameter_nm(to_bulk(D), **se_kw)), step
+    )
 
-    if n_used >= _MIN_TRACKS_CV:
-        g = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
-        fold = g.permutation(n_used) % _N_FOLDS
-        fold_params = [params0] * _N_FOLDS
-        strengths: list[float] = []
-        rows: list[np.ndarray] = []
-        lam = _STRENGTH_MAX
-        while True:  # strongest first, warm starts towards weaker penalties
-            row = np.empty(n_used)
-            for f in range(_N_FOLDS):
-                train, test = fold != f, fold == f
-                fold_params[f] = _fit_penalised(L[train], weight[train], basis, lam, fold_params[f])
-                row[test] = _heldout_scores(L[test], row_max[test], weight[test], _theta_of(basis, fold_params[f]))
-            strengths.append(lam)
-            rows.append(row)
-            lam /= 10.0
-            if lam < _STRENGTH_MIN * (1 - 1e-9):
-                # go on only while the weakest penalty is still clearly the best (sharp, separate modes)
-                gain = rows[-1] - rows[-2]
-                if not (lam >= _STRENGTH_FLOOR * (1 - 1e-9)
-                        and gain.sum() > np.sqrt(n_used * np.var(gain))):
-                    break
-        scores = np.array(rows)
-        scores = np.where(np.isfinite(scores), scores, -1e12)
-        total = scores.sum(axis=1)
-        best = int(np.argmax(total))
-        diff_se = np.sqrt(n_used * np.var(scores - scores[best], axis=1))
-        chosen = int(np.min(np.flatnonzero(total >= total[best] - diff_se)))
-        rule = f"{_N_FOLDS}-fold cross-validation, one-SE rule"
-        method["cv_log_likelihood"] = [float(v) for v in total]
-        method["cv_strengths"] = strengths
-    else:
-        strengths, chosen = [_STRENGTH_MAX], 0
-        rule = f"best log-normal (fewer than {_MIN_TRACKS_CV} tracks)"
-    params = params0
-    for lam in strengths[:chosen + 1]:
-        params = _fit_penalised(L, weight, basis, lam, params)
-    theta = _theta_of(basis, params)
+    theta, cv_info = choose_and_fit(L, row_max, weight, basis, params0, rng=rng)
+    method.update(cv_info)
     number = _softmax(theta)
-    method.update({"regularization_strength": float(strengths[chosen]), "regularization_rule": rule,
-                   "grid_step_ln": step, "n_grid": int(grid.size)})
+    method.update({"grid_step_ln": step, "n_grid": int(grid.size)})
 
     # raw histogram on the same cells
     edges = np.concatenate([[u[0] - step / 2], 0.5 * (u[1:] + u[:-1]), [u[-1] + step / 2]])
@@ -753,22 +570,43 @@ def size_distribution(
 
     volume = weighted_fractions(grid, number, 3)
     intensity = weighted_fractions(grid, number, 6)
-    table = pd.DataFrame({
-        "diameter_nm": grid, "D_um2_s": D_grid, "raw_number_fraction": raw_hist, "number_fraction": number,
-        "volume_fraction": volume, "intensity_fraction": intensity,
-        "cumulative_number_fraction": np.cumsum(number),
-    })
+    table = pd.DataFrame(
+        {
+            "diameter_nm": grid,
+            "D_um2_s": D_grid,
+            "raw_number_fraction": raw_hist,
+            "number_fraction": number,
+            "volume_fraction": volume,
+            "intensity_fraction": intensity,
+            "cumulative_number_fraction": np.cumsum(number),
+        }
+    )
     rq = _weighted_quantile(raw_d[raw_ok], tr.weight[raw_ok], np.array(_QUANTILES))
     raw_modes = _modes(grid, raw_hist)
-    raw = SizeStatistics(modes_nm=raw_modes[0], mode_fractions=raw_modes[1],
-                         mean_nm=float(np.average(raw_d[raw_ok], weights=tr.weight[raw_ok])),
-                         d10_nm=float(rq[0]), d50_nm=float(rq[1]), d90_nm=float(rq[2]),
-                         span=float((rq[2] - rq[0]) / rq[1]))
+    raw = SizeStatistics(
+        modes_nm=raw_modes[0],
+        mode_fractions=raw_modes[1],
+        mean_nm=float(np.average(raw_d[raw_ok], weights=tr.weight[raw_ok])),
+        d10_nm=float(rq[0]),
+        d50_nm=float(rq[1]),
+        d90_nm=float(rq[2]),
+        span=float((rq[2] - rq[0]) / rq[1]),
+    )
     return SizeDistribution(
-        status="ok", n_tracks=n_total, n_tracks_used=n_used, sample_D_um2_s=Dbar, sample_D_ci95_um2_s=D_ci,
-        sample_diameter_nm=sample_d, sample_diameter_ci95_nm=sample_ci,
-        number=size_statistics(grid, number), volume=size_statistics(grid, volume),
-        intensity=size_statistics(grid, intensity), raw=raw, table=table, method=method)
+        status="ok",
+        n_tracks=n_total,
+        n_tracks_used=n_used,
+        sample_D_um2_s=Dbar,
+        sample_D_ci95_um2_s=D_ci,
+        sample_diameter_nm=sample_d,
+        sample_diameter_ci95_nm=sample_ci,
+        number=size_statistics(grid, number),
+        volume=size_statistics(grid, volume),
+        intensity=size_statistics(grid, intensity),
+        raw=raw,
+        table=table,
+        method=method,
+    )
 
 
 def track_sizes_nm(
@@ -786,7 +624,7 @@ def track_sizes_nm(
 
     1/D̂ of a Gamma(k) estimate is biased high by k/(k − 1) (k = d N_s/2 without noise), so a single track's
     naive size d(D̂) is too large by that factor on average; ``diameter_nm`` multiplies it by (k − 1)/k, k from
-    the kernel at D̂ (NaN when k ≤ 1 or D̂ ≤ 0). Still use the pooled D or :func:`size_distribution` for samples.
+    the kernel at D̂ (NaN when k ≤ 1 or D̂ ≤ 0). For samples use the pooled D or :func:`size_distribution`.
 
     Returns
     -------
@@ -795,8 +633,10 @@ def track_sizes_nm(
     _check_timing(frame_interval_s, exposure_s, n_dims)
     dt = float(frame_interval_s)
     R = blur_coefficient(dt, exposure_s)
-    n = (track_fits["n_steps"] if "n_steps" in track_fits.columns else track_fits["n_points"] - 1).to_numpy(float)
-    m = (track_fits["n_adjacent_steps"].to_numpy(float) if "n_adjacent_steps" in track_fits.columns else n - 1)
+    n = (track_fits["n_steps"] if "n_steps" in track_fits.columns else track_fits["n_points"] - 1).to_numpy(
+        float
+    )
+    m = track_fits["n_adjacent_steps"].to_numpy(float) if "n_adjacent_steps" in track_fits.columns else n - 1
     if localization_sd_um is not None:
         s2 = np.full(n.size, float(localization_sd_um) ** 2)
     elif "sigma_um" in track_fits.columns:
@@ -804,19 +644,36 @@ def track_sizes_nm(
     else:
         s2 = np.zeros(n.size)
     D = track_fits["D_um2_s"].to_numpy(float)
-    tr = _Tracks(y=np.ones(n.size), n=np.maximum(n, 1), m=np.clip(m, 0, None), s2=s2, D=D, weight=np.ones(n.size),
-                 n_points=n + 1)
+    tr = _Tracks(
+        y=np.ones(n.size),
+        n=np.maximum(n, 1),
+        m=np.clip(m, 0, None),
+        s2=s2,
+        D=D,
+        weight=np.ones(n.size),
+        n_points=n + 1,
+    )
     with np.errstate(invalid="ignore", divide="ignore"):
         k, _ = _gamma_shape_scale(np.where(D > 0, D, np.nan)[:, None], tr, dt, R, n_dims)
         k = k[:, 0]
         D0 = np.where(D > 0, D, np.nan)
         if wall_distance_um is not None:
-            D0 = np.asarray(hydro.wall_corrected_D_um2_s(D0, wall_distance_um=wall_distance_um,
-                                                         temperature_c=temperature_c,
-                                                         viscosity_mpa_s=viscosity_mpa_s))
-        naive = np.asarray(hydro.stokes_einstein_diameter_nm(D0, temperature_c=temperature_c,
-                                                             viscosity_mpa_s=viscosity_mpa_s), dtype=float)
+            D0 = np.asarray(
+                hydro.wall_corrected_D_um2_s(
+                    D0,
+                    wall_distance_um=wall_distance_um,
+                    temperature_c=temperature_c,
+                    viscosity_mpa_s=viscosity_mpa_s,
+                )
+            )
+        naive = np.asarray(
+            hydro.stokes_einstein_diameter_nm(
+                D0, temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s
+            ),
+            dtype=float,
+        )
         corrected = np.where((k > 1) & (n >= 1), naive * (k - 1) / k, np.nan)
     track_ids = track_fits["track"].to_numpy() if "track" in track_fits.columns else np.arange(n.size)
-    return pd.DataFrame({"track": track_ids, "diameter_nm": corrected, "radius_nm": corrected / 2,
-                         "naive_diameter_nm": naive})
+    return pd.DataFrame(
+        {"track": track_ids, "diameter_nm": corrected, "radius_nm": corrected / 2, "naive_diameter_nm": naive}
+    )

@@ -17,16 +17,24 @@ KW = dict(temperature_c=T_C, viscosity_mpa_s=ETA, frame_interval_s=DT, exposure_
 
 
 def D_of(diameter_nm):
-    return hydro.stokes_einstein_D_um2_s(np.asarray(diameter_nm, float) / 2, temperature_c=T_C,
-                                         viscosity_mpa_s=ETA)
+    return hydro.stokes_einstein_D_um2_s(
+        np.asarray(diameter_nm, float) / 2, temperature_c=T_C, viscosity_mpa_s=ETA
+    )
 
 
 def simulate(diameters_nm, *, rng, steps=(5, 30), exposure_s=EXPOSURE, sigma_um=SIGMA, D_scale=1.0):
     g = np.random.default_rng(rng)
     n = len(diameters_nm)
     n_steps = g.integers(steps[0], steps[1] + 1, n)
-    pos = brownian_positions(n, steps[1] + 1, D_um2_s=D_of(diameters_nm) * D_scale, frame_interval_s=DT,
-                             exposure_s=exposure_s, localization_sd_um=sigma_um, rng=g)
+    pos = brownian_positions(
+        n,
+        steps[1] + 1,
+        D_um2_s=D_of(diameters_nm) * D_scale,
+        frame_interval_s=DT,
+        exposure_s=exposure_s,
+        localization_sd_um=sigma_um,
+        rng=g,
+    )
     return positions_to_tracks(pos, frame_interval_s=DT, lengths=n_steps + 1)
 
 
@@ -37,11 +45,13 @@ def test_fake_polydispersity_check_values_for_10_steps():
 
 @pytest.mark.parametrize("seed", [0, 1])
 def test_naive_per_track_sizes_of_identical_particles_spread_as_the_gamma_law_predicts(seed):
-    # Saxton 1997: D̂ ~ Gamma(N_s, D/N_s) in 2D; the fraction of sizes below each predicted quantile is binomial.
+    # Saxton 1997: D̂ ~ Gamma(N_s, D/N_s) in 2D; the fraction below each predicted quantile is binomial.
     n = 3000
     tracks = simulate(np.full(n, 100.0), rng=seed, steps=(10, 10), exposure_s=0.0, sigma_um=0.0)
     est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=0.0, localization_sd_um=0.0)
-    naive = hydro.stokes_einstein_diameter_nm(est["D_um2_s"].to_numpy(), temperature_c=T_C, viscosity_mpa_s=ETA)
+    naive = hydro.stokes_einstein_diameter_nm(
+        est["D_um2_s"].to_numpy(), temperature_c=T_C, viscosity_mpa_s=ETA
+    )
     for q, ratio in zip((0.1, 0.5, 0.9), sizing.apparent_size_quantiles(10), strict=True):
         frac = np.mean(naive < 100.0 * ratio)
         assert abs(frac - q) < 4 * math.sqrt(q * (1 - q) / n)
@@ -51,7 +61,9 @@ def test_naive_per_track_sizes_of_identical_particles_spread_as_the_gamma_law_pr
 def test_lag1_estimator_is_unbiased_with_blur_and_localisation_noise(seed):
     # E⟨Δx²⟩ = 2DΔt(1 − 2R) + 2σ² (Berglund 2010); SE from the kernel's variance.
     tracks = simulate(np.full(2000, 100.0), rng=seed, steps=(12, 12))
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
     D0 = float(D_of(100.0))
     se = D0 * math.sqrt(1.02 / 12 / len(est))
     assert abs(est["D_um2_s"].mean() - D0) < 4.5 * se
@@ -59,10 +71,12 @@ def test_lag1_estimator_is_unbiased_with_blur_and_localisation_noise(seed):
 
 
 def test_kernel_variance_matches_the_spread_of_simulated_lag1_statistics():
-    # MA(1) increments (Berglund 2010): Var m = 2(N a² + 2(N−1) b²)/(d N²); Gamma kurtosis 6/k sets the tolerance.
+    # MA(1) increments (Berglund 2010): Var m = 2(N a² + 2(N−1) b²)/(d N²); kurtosis 6/k sets the tolerance.
     n_tr, n_s = 6000, 8
     tracks = simulate(np.full(n_tr, 100.0), rng=7, steps=(n_s, n_s), sigma_um=0.06)
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=0.06)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=0.06
+    )
     R = sizing.blur_coefficient(DT, EXPOSURE)
     tr, kernel, _ = sizing._tracks_from_fits(est, DT, R, 2, None, "track")
     assert kernel.startswith("lag1 gamma (exact")
@@ -109,7 +123,9 @@ def test_hatch_choate_conversions_of_a_lognormal_number_distribution():
 def test_deconvolution_recovers_a_monodisperse_size_from_short_tracks(seed):
     # Known truth (100 nm, 5–30 steps, blur and noise): the raw histogram is wide, the deconvolved one narrow.
     tracks = simulate(np.full(600, 100.0), rng=seed)
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
     dist = sizing.size_distribution(est, **KW)
     assert dist.status == "ok"
     # D50 SE ≈ 1/√(Σ N_s) ≈ 1.0 %; 3 % is ≥ 3 SE
@@ -124,7 +140,9 @@ def test_deconvolution_separates_an_80_plus_250_nm_mixture():
     g = np.random.default_rng(21)
     truth = np.where(g.random(600) < 0.5, 80.0, 250.0)
     tracks = simulate(truth, rng=22)
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
     dist = sizing.size_distribution(est, **KW)
     assert len(dist.modes_nm) == 2
     assert dist.modes_nm[0] == pytest.approx(80.0, rel=0.1)
@@ -136,7 +154,9 @@ def test_deconvolution_separates_an_80_plus_250_nm_mixture():
 def test_sample_size_averages_D_while_a_mean_of_track_sizes_is_biased_high():
     # single-track d̂ is biased high by d N_s/(d N_s − 2) (METHODS.md); pooled D is not.
     tracks = simulate(np.full(1500, 100.0), rng=5, steps=(5, 8))
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
     sizes = sizing.track_sizes_nm(est, **KW)
     naive_mean = np.nanmean(sizes["naive_diameter_nm"])
     corrected_mean = np.nanmean(sizes["diameter_nm"])
@@ -162,7 +182,9 @@ def test_wall_distance_enters_the_size_grid_through_faxen():
     # Faxén (h/r = 2 → 0.7214): particles 0.1 µm from the wall diffuse 28 % slower but are sized right.
     d_true, h_um = 100.0, 0.1
     tracks = simulate(np.full(400, d_true), rng=9, D_scale=float(hydro.faxen_parallel_factor(2.0)))
-    est = sizing.lag1_track_estimates(tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
     plain = sizing.size_distribution(est, **KW)
     walled = sizing.size_distribution(est, wall_distance_um=h_um, **KW)
     assert plain.d50_nm > 120.0
@@ -201,8 +223,9 @@ def test_two_tracks_are_too_few_and_say_so():
 
 
 def test_gaps_split_steps_and_are_not_counted_as_lag_one():
-    tracks = pd.DataFrame({"track": [0] * 5, "frame": [0, 1, 2, 4, 5], "x_um": [0.0, 1, 2, 3, 4],
-                           "y_um": [0.0] * 5})
+    tracks = pd.DataFrame(
+        {"track": [0] * 5, "frame": [0, 1, 2, 4, 5], "x_um": [0.0, 1, 2, 3, 4], "y_um": [0.0] * 5}
+    )
     est = sizing.lag1_track_estimates(tracks, frame_interval_s=1.0, exposure_s=0.0, localization_sd_um=0.0)
     assert int(est["n_steps"].iloc[0]) == 3
     assert int(est["n_adjacent_steps"].iloc[0]) == 1
@@ -211,8 +234,10 @@ def test_gaps_split_steps_and_are_not_counted_as_lag_one():
 
 @pytest.mark.parametrize(
     ("table", "match"),
-    [(pd.DataFrame({"track": [0], "n_points": [5]}), "D_um2_s"),
-     (pd.DataFrame({"track": [0], "D_um2_s": [1.0]}), "n_steps or n_points")],
+    [
+        (pd.DataFrame({"track": [0], "n_points": [5]}), "D_um2_s"),
+        (pd.DataFrame({"track": [0], "D_um2_s": [1.0]}), "n_steps or n_points"),
+    ],
 )
 def test_size_distribution_rejects_tables_without_the_needed_columns(table, match):
     with pytest.raises(ValueError, match=match):
@@ -221,5 +246,6 @@ def test_size_distribution_rejects_tables_without_the_needed_columns(table, matc
 
 def test_lag1_estimates_reject_tracks_without_positions_in_um():
     with pytest.raises(ValueError, match="columns track, frame, x_um, y_um"):
-        sizing.lag1_track_estimates(pd.DataFrame({"track": [0], "frame": [0], "x_px": [1.0]}),
-                                    frame_interval_s=DT, exposure_s=0.0)
+        sizing.lag1_track_estimates(
+            pd.DataFrame({"track": [0], "frame": [0], "x_px": [1.0]}), frame_interval_s=DT, exposure_s=0.0
+        )
