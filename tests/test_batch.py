@@ -363,3 +363,32 @@ def test_real_pipeline_gives_the_same_numbers_in_local_processes_as_serially(tmp
     assert serial.exit_code == local.exit_code == 0
     pd.testing.assert_frame_equal(_comparable(serial.table()), _comparable(local.table()), check_exact=False,
                                   rtol=1e-12)
+
+
+def test_real_pipeline_one_good_movie_among_broken_movies_is_complete_and_exit_code_is_1(tmp_path):
+    from msdkit.simulate.recipe import recipe_from_dict
+    from msdkit.simulate.scene import write_scene
+
+    folder = tmp_path / "in"
+    make_inputs(folder, n_good=0)
+    recipe = recipe_from_dict({"name": "beads", "width_px": 96, "height_px": 96, "n_frames": 60, "seed": 3,
+                               "pixel_size_um": 0.1, "frame_interval_s": 0.05, "exposure_s": 0.01,
+                               "optics": {"n_dims": 2},
+                               "populations": [{"count_in_view": 12, "diameter_nm": 200, "photons": 2000}]})
+    movie = write_scene(recipe, tmp_path / "rendered")[0]
+    (folder / "beads.ome.tif").write_bytes(movie.read_bytes())
+    result = run_batch(make_cfg(tmp_path), progress=False)
+    assert result.exit_code == 1
+    rows = {r.stack: r for r in result.rows}
+    assert {s for s, r in rows.items() if r.status == "ok"} == {"beads"}
+    assert rows["beads"].n_tracks > 0 and np.isfinite(rows["beads"].D_um2_s)
+    for stack in BROKEN:
+        error = rows[stack].error
+        # Each message names the file and says what was expected and what was found.
+        assert error.startswith(f"{stack}.tif") and "\n" not in error, error
+        assert (tmp_path / "out" / stack / ERROR_FILE).is_file()
+    out = tmp_path / "out" / "beads"
+    for name in ("summary.json", "tracks.parquet", "track_fits.csv", "msd_ensemble.csv", DONE_FILE):
+        assert (out / name).is_file(), name
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["D_um2_s"] == pytest.approx(rows["beads"].D_um2_s, rel=1e-12)
