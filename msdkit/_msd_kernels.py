@@ -106,7 +106,8 @@ def dct1_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - compi
 
 
 @numba.njit(cache=True)
-def finish_block(G, f1, csum, count, n_lag, scale, rows, offsets, out_lag, out_msd, out_pairs):  # pragma: no cover
+def finish_block(G, f1, csum, count, n_lag, scale, rows, offsets, out_lag, out_msd,
+                 out_pairs):  # pragma: no cover - compiled
     """Autocorrelation from the half-length FFT, MSD = (S1 - 2 S2)/(L - n), written into the output."""
     b = G.shape[0]
     for r in range(b):
@@ -126,3 +127,92 @@ def finish_block(G, f1, csum, count, n_lag, scale, rows, offsets, out_lag, out_m
             out_lag[o + n] = n
             out_msd[o + n] = (s1 - 2.0 * scale * f) / (L - n)
             out_pairs[o + n] = L - n
+
+
+@numba.njit(cache=True, fastmath=True)
+def fill_gapped(c0, c1, c2, n_dims, frame, start, count, first, stack):  # pragma: no cover - compiled
+    """Place tracks with gaps on the frame grid.
+
+    stack[d] gets centred coordinates, stack[n_dims] the mask of observed frames and stack[n_dims + 1] the
+    squared distance from the track's mean (zeros elsewhere).
+    """
+    b = start.size
+    stack[:] = 0.0
+    for r in range(b):
+        s = start[r]
+        L = count[r]
+        f0 = first[r]
+        for i in range(L):
+            col = frame[s + i] - f0
+            stack[n_dims, r, col] = 1.0
+        for d in range(n_dims):
+            c = c0 if d == 0 else (c1 if d == 1 else c2)
+            m = 0.0
+            for i in range(L):
+                m += c[s + i]
+            m /= L
+            for i in range(L):
+                col = frame[s + i] - f0
+                v = c[s + i] - m
+                stack[d, r, col] = v
+                stack[n_dims + 1, r, col] += v * v
+
+
+@numba.njit(cache=True, fastmath=True)
+def gapped_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - compiled
+    """Fold the numerator and pair-count spectra for a DCT-I by a half-length real FFT.
+
+    Numerator 2 Re(conj(M) Q) - 2 sum_d |X_d|^2 and pair count |M|^2 (both real and even) go to g[0] and g[1]
+    (see :func:`dct1_prepare`).
+    """
+    b = spec.shape[1]
+    half = g.shape[2]
+    pn = np.empty(half + 1)
+    pc = np.empty(half + 1)
+    for r in range(b):
+        mz = spec[n_dims, r].view(np.float64)
+        qz = spec[n_dims + 1, r].view(np.float64)
+        for k in range(half + 1):
+            mr, mi = mz[2 * k], mz[2 * k + 1]
+            pn[k] = 2.0 * (mr * qz[2 * k] + mi * qz[2 * k + 1])
+            pc[k] = mr * mr + mi * mi
+        for d in range(n_dims):
+            z = spec[d, r].view(np.float64)
+            for k in range(half + 1):
+                pn[k] -= 2.0 * (z[2 * k] * z[2 * k] + z[2 * k + 1] * z[2 * k + 1])
+        for which in range(2):
+            p = pn if which == 0 else pc
+            out = g[which, r]
+            out[0] = 0.5 * (p[0] + p[half])
+            acc = 0.5 * (p[0] - p[half])
+            for j in range(1, half // 2 + 1):
+                k = half - j
+                sym = 0.5 * (p[j] + p[k])
+                dif = p[j] - p[k]
+                out[j] = sym - sin_t[j] * dif
+                out[k] = sym + sin_t[j] * dif
+                acc += cos_t[j] * dif
+            f1[which, r] = acc
+
+
+@numba.njit(cache=True)
+def gapped_finish(G, f1, n_lag, scale, msd, pairs):  # pragma: no cover - compiled
+    """Numerator and pair count per lag from the half-length FFTs; msd = numerator / pairs (NaN if none)."""
+    b = G.shape[1]
+    for r in range(b):
+        odd_n = f1[0, r]
+        odd_c = f1[1, r]
+        for n in range(1, n_lag[r] + 1):
+            m = n >> 1
+            if n & 1:
+                if m > 0:
+                    odd_n -= G[0, r, m].imag
+                    odd_c -= G[1, r, m].imag
+                fn = odd_n
+                fc = odd_c
+            else:
+                fn = G[0, r, m].real
+                fc = G[1, r, m].real
+            cnt = np.int64(np.rint(scale * fc))
+            pairs[r, n] = cnt
+            msd[r, n] = scale * fn / cnt if cnt > 0 else np.nan

@@ -142,7 +142,8 @@ def _fill_padded(idx, K, first, n_modes, *arrays):
     """(len(idx), K) arrays of each flat per-mode array for tracks idx, plus a 0/1 weight array."""
     cols = np.arange(K)
     w = (cols[None, :] < n_modes[idx][:, None]).astype(float)
-    src = np.minimum(first[idx][:, None] + cols[None, :], first[idx][:, None] + np.maximum(n_modes[idx], 1)[:, None] - 1)
+    last = first[idx][:, None] + np.maximum(n_modes[idx], 1)[:, None] - 1
+    src = np.minimum(first[idx][:, None] + cols[None, :], last)
     out = [np.where(w > 0, arr[src], (1.0 if k == 0 else 0.0)) for k, arr in enumerate(arrays)]
     return w, out
 
@@ -199,7 +200,8 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
         rho = a0 / b0 if b0 > 0 else 0.0
     else:
         b0, a0 = dif.covariance_estimate(st.sum_sq[usable].sum(), st.n_steps[usable].sum(),
-                                         st.sum_cross[usable].sum(), st.n_pairs[usable].sum(), n_dims=n_dims, R=R)
+                                         st.sum_cross[usable].sum(), st.n_pairs[usable].sum(),
+                                         n_dims=n_dims, R=R)
     # intervals take the sample's pooled localisation variance (precise) rather than each track's own
     # (noisy at small N, which would make the intervals too wide or too narrow)
     s_pool = max(float(a0 + R * b0), 0.0) if np.isfinite(a0 + R * b0) else 0.0
@@ -399,9 +401,12 @@ def fit_tracks(
     pooled localisation variance; for the MSD fit and the full likelihood a score-type interval from the
     exact MSD covariance or the Fisher information. The upper end is +inf when a track is too short and
     noisy to bound D. Intervals assume the track shares the sample's localisation error; in samples where
-    it varies strongly between tracks, single-track coverage departs from 95 %. The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
-    the model 2d [K g_alpha(t) + sigma^2] including blur (:func:`msdkit.estimators.anomalous.blurred_power_law`)
-    by generalised least squares, with sigma fixed at the shared value.
+    it varies strongly between tracks, single-track coverage departs from 95 %.
+
+    The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
+    the model 2d [K g_alpha(t) + sigma^2] including blur
+    (:func:`msdkit.estimators.anomalous.blurred_power_law`) by generalised least squares weighted by the
+    model's own TA-MSD covariance, with sigma fixed at the shared value.
 
     Examples
     --------
@@ -450,7 +455,8 @@ def fit_tracks(
     if not fit_alpha:
         alpha = a_lo = a_hi = K = np.full(n_tr, np.nan)
     else:
-        alpha, a_lo, a_hi, K = _alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R, n_dims=n_dims)
+        alpha, a_lo, a_hi, K = _alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R,
+                                              n_dims=n_dims)
 
     with np.errstate(invalid="ignore", divide="ignore"):
         x_red = np.where(usable, 2.0 * s / b, np.nan)
@@ -481,8 +487,9 @@ class SampleFit:
     D_um2_s, D_ci95_um2_s, D_se_um2_s : pooled D, its interval (lo, hi) and bootstrap SD.
     sigma_um, sigma2_um2 : localisation error from the D estimator (sigma2 may be negative).
     x_reduced : sigma^2 / (D dt).
-    alpha, alpha_ci95, alpha_se, K_um2_s_alpha, alpha_sigma_um : anomalous exponent from the ensemble MSD with
-        the localisation and blur offset, its interval, SD, prefactor and the localisation error fitted with it.
+    alpha, alpha_ci95, alpha_se, K_um2_s_alpha, alpha_sigma_um : anomalous exponent from the ensemble MSD
+        with the localisation and blur offset, its interval, SD, prefactor and the localisation error fitted
+        with it.
     alpha_lags_frames : lags used for alpha.
     method : estimator of D used; n_tracks, n_steps : tracks and consecutive-frame steps used.
     n_boot : bootstrap replicates; fit_status : ``ok`` or the reason.

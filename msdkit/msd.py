@@ -84,8 +84,11 @@ class _Tracks:
 
 
 def _fft_size_ladder(n_max: int) -> np.ndarray:
-    """FFT lengths 2h with h a fast real-FFT length, growing by about 10 % (tracks are grouped by the
-    smallest that fits; the half length h is what the DCT-I step of the engine transforms)."""
+    """FFT lengths 2h with h a fast real-FFT length, growing by about 10 %.
+
+    Tracks are grouped by the smallest length that fits; the half length h is what the DCT-I step of the
+    engine transforms.
+    """
     sizes, h = [], 4
     while True:
         f = scipy.fft.next_fast_len(h, real=True)
@@ -113,24 +116,6 @@ def _blocks(need: np.ndarray, length: np.ndarray):
         per = max(1, _BLOCK_ELEMENTS // nfft)
         for s in range(0, grp.size, per):
             yield grp[s:s + per], nfft
-
-
-def _gather(tr: _Tracks, idx: np.ndarray, length: np.ndarray, width: int, offset: np.ndarray | None = None):
-    """Row and column indices placing each track's positions on a (len(idx), width) grid, and source rows."""
-    rows = np.repeat(np.arange(idx.size), length)
-    first_row = np.concatenate([[0], np.cumsum(length)[:-1]])
-    pos_in_track = np.arange(rows.size) - np.repeat(first_row, length)
-    src = np.repeat(tr.start[idx], length) + pos_in_track
-    cols = pos_in_track if offset is None else tr.frame[src] - np.repeat(offset, length)
-    return rows, cols, src
-
-
-def _power(spec: np.ndarray, out: np.ndarray) -> None:
-    """Add |spec|^2 to out in place."""
-    v = spec.view(np.float64)
-    re, im = v[:, 0::2], v[:, 1::2]
-    out += re * re
-    out += im * im
 
 
 def _contiguous_into(tr: _Tracks, idx: np.ndarray, nfft: int, n_lag: np.ndarray, offsets: np.ndarray,
@@ -163,31 +148,32 @@ def _contiguous_into(tr: _Tracks, idx: np.ndarray, nfft: int, n_lag: np.ndarray,
 
 
 def _block_gapped(tr: _Tracks, idx: np.ndarray, nfft: int, n_lag: np.ndarray):
-    """TA-MSD of tracks with missed frames: masked correlations on the frame grid, pairs counted by FFT."""
-    L = tr.count[idx]
-    b, w = idx.size, int(n_lag.max()) + 1
-    rows, cols, src = _gather(tr, idx, L, nfft, offset=tr.first[idx])
-    mask = np.zeros((b, nfft))
-    mask[rows, cols] = 1.0
-    sq = np.zeros((b, nfft))
-    cross = np.zeros((b, nfft // 2 + 1))
-    for c in tr.coords:
-        grid = np.zeros((b, nfft))
-        vals = c[src]
-        mean = np.bincount(rows, weights=vals, minlength=b) / L
-        grid[rows, cols] = vals - mean[rows]
-        spec = scipy.fft.rfft(grid, axis=1)
-        _power(spec, cross)
-        grid *= grid
-        sq += grid
-    m_spec = scipy.fft.rfft(mask, axis=1)
-    q_spec = scipy.fft.rfft(sq, axis=1)
-    # sum_i m_i m_{i+n} (s_i + s_{i+n}) = corr(m, q) + corr(q, m), whose spectrum is 2 Re(conj(M) Q)
-    num_spec = 2.0 * (m_spec.real * q_spec.real + m_spec.imag * q_spec.imag) - 2.0 * cross
-    num = scipy.fft.irfft(num_spec, n=nfft, axis=1)[:, :w]
-    pairs = np.rint(scipy.fft.irfft(m_spec.real**2 + m_spec.imag**2, n=nfft, axis=1)[:, :w]).astype(np.int64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        msd = num / pairs
+    """TA-MSD of tracks with missed frames: masked correlations on the frame grid, pairs counted by FFT.
+
+    With m the mask of observed frames and q = m |r|^2, sum over pairs of |r_(i+n) - r_i|^2 is
+    corr(m, q)(n) + corr(q, m)(n) - 2 corr(r, r)(n); its spectrum and that of the pair count corr(m, m) are
+    real and even, so both inverse transforms are DCT-Is done with half-length real FFTs.
+    """
+    from . import _msd_kernels as k
+
+    b = idx.size
+    n_dims = len(tr.coords)
+    half = nfft // 2
+    w = int(n_lag.max()) + 1
+    stack = np.empty((n_dims + 2, b, nfft))
+    c = tr.coords + [tr.coords[0]] * (3 - n_dims)
+    k.fill_gapped(c[0], c[1], c[2], n_dims, tr.frame, tr.start[idx], tr.count[idx], tr.first[idx], stack)
+    spec = scipy.fft.rfft(stack, axis=2)
+    del stack
+    j = np.arange(half // 2 + 1)
+    g = np.empty((2, b, half))
+    f1 = np.empty((2, b))
+    k.gapped_prepare(spec, n_dims, np.sin(np.pi * j / half), np.cos(np.pi * j / half), g, f1)
+    del spec
+    G = scipy.fft.rfft(g, axis=2)
+    msd = np.full((b, w), np.nan)
+    pairs = np.zeros((b, w), np.int64)
+    k.gapped_finish(G, f1, n_lag, 2.0 / nfft, msd, pairs)
     return msd, pairs
 
 

@@ -48,7 +48,8 @@ def test_msd_variance_matches_qian_sheetz_elson_1991(N_s, n, ratio):
     assert Qbb[n - 1, n - 1] / (2 * n * n) == pytest.approx(formula, rel=1e-12)
 
 
-@pytest.mark.parametrize("x, allowed", [(0.1, {2}), (1.0, {3}), (3.0, {4, 5}), (10.0, {7, 8}), (30.0, {11, 12, 13, 14})])
+@pytest.mark.parametrize("x, allowed",
+                         [(0.1, {2}), (1.0, {3}), (3.0, {4, 5}), (10.0, {7, 8}), (30.0, {11, 12, 13, 14})])
 @pytest.mark.parametrize("N", [100, 1000])
 def test_optimal_lag_count_matches_michalet_2010(N, x, allowed):
     # Michalet 2010, Phys. Rev. E 82:041914 (as tabulated in METHODS.md), nearly independent of N
@@ -105,7 +106,8 @@ def test_estimators_are_unbiased_with_motion_blur(method):
 def test_auto_reaches_the_cramer_rao_bound_and_picks_by_noise_level():
     for x, expect in ((0.1, "covariance"), (10.0, "one_step_likelihood")):
         M, N = 3000, 100
-        f = fit_tracks(brownian_tracks(M, N, x=x, seed=3), frame_interval_s=DT, exposure_s=0.0, fit_alpha=False)
+        f = fit_tracks(brownian_tracks(M, N, x=x, seed=3), frame_interval_s=DT, exposure_s=0.0,
+                       fit_alpha=False)
         assert (f["method"] == expect).all()
         rel_sd = f["D_um2_s"].std(ddof=1)
         crb = cramer_rao_relative_sd(N, x)

@@ -32,7 +32,8 @@ def make_tracks(rng, n_tracks=25, n_points=70, offset_um=0.0, drop=0.0, ragged=F
     pos = brownian_positions(n_tracks, n_points, D_um2_s=0.5, frame_interval_s=0.02, exposure_s=0.01,
                              localization_sd_um=0.02, rng=rng) + offset_um
     lengths = rng.integers(1, n_points + 1, n_tracks) if ragged else None
-    t = positions_to_tracks(pos, frame_interval_s=0.02, lengths=lengths, first_frames=rng.integers(0, 9, n_tracks))
+    t = positions_to_tracks(pos, frame_interval_s=0.02, lengths=lengths,
+                            first_frames=rng.integers(0, 9, n_tracks))
     if drop:
         t = t[rng.random(len(t)) >= drop]
     return t.reset_index(drop=True)
@@ -85,7 +86,8 @@ def test_three_dimensional_msd_sums_three_coordinates():
 
 
 def test_single_point_tracks_have_no_rows_and_empty_input_gives_empty_table():
-    t = pd.DataFrame({"track": [1, 2, 2], "frame": [0, 0, 1], "x_um": [0.0, 0.0, 1.0], "y_um": [0.0, 0.0, 0.0]})
+    t = pd.DataFrame({"track": [1, 2, 2], "frame": [0, 0, 1], "x_um": [0.0, 0.0, 1.0],
+                      "y_um": [0.0, 0.0, 0.0]})
     got = time_averaged_msd(t)
     assert got["track"].tolist() == [2] and got["msd_um2"].tolist() == [1.0]
     assert len(time_averaged_msd(t.iloc[:0])) == 0

@@ -26,8 +26,8 @@ def blurred_power_law(t_s, alpha, exposure_s: float):
     """g_alpha(t; t_E): t^alpha averaged over two exposures of length t_E, for t >= t_E (lags of >= 1 frame).
 
     g = [(t + T)^(a+2) + (t - T)^(a+2) - 2 t^(a+2)] / (T^2 (a+1)(a+2)) - 2 T^a / ((a+1)(a+2)), T = t_E,
-    from MSD_blur(t) = int_{-T}^{T} (T - |u|)/T^2 [V(t + u) - V(u)] du with V = 2K|t|^a (computed). A series in
-    T/t is used when T/t < 0.01 to avoid cancellation.
+    from MSD_blur(t) = int_{-T}^{T} (T - |u|)/T^2 [V(t + u) - V(u)] du with V = 2K|t|^a (computed). A series
+    in T/t is used when T/t < 0.01 to avoid cancellation.
     """
     t = np.asarray(t_s, float)
     a = np.asarray(alpha, float)

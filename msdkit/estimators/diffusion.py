@@ -29,7 +29,7 @@ Z95 = 1.959963984540054
 
 
 def blur_coefficient(frame_interval_s: float, exposure_s: float) -> float:
-    """Motion-blur coefficient R = t_E / (6 dt) for uniform illumination during the exposure (Berglund 2010)."""
+    """Motion-blur coefficient R = t_E / (6 dt), uniform illumination during the exposure (Berglund 2010)."""
     return float(exposure_s) / (6.0 * float(frame_interval_s))
 
 
@@ -79,8 +79,8 @@ def quadratic_interval(b_hat, s_hat, kbb, kab, kaa, *, R: float, z: float = Z95)
     """Score-type interval {b : (b_hat - b)^2 <= z^2 Var(b)} for Var quadratic in (b, a), a = s_hat - R b.
 
     The variance is evaluated at the hypothesised b rather than at the estimate (as in Wilson's interval), so
-    the interval is asymmetric where the estimator's spread grows with D. Returns (lo, hi); hi is +inf when the
-    relative precision is too poor to bound b from above.
+    the interval is asymmetric where the estimator's spread grows with D. Returns (lo, hi); hi is +inf when
+    the relative precision is too poor to bound b from above.
     """
     b_hat, s_hat = np.asarray(b_hat, float), np.asarray(s_hat, float)
     # Var(b) with a = s - R b:  q2 b^2 + q1 b + q0
@@ -116,7 +116,8 @@ def _loglik(b, a, lam, S, w, d):
     psi = b[:, None] + a[:, None] * lam
     ok = np.all((psi > 0) | (w == 0), axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        ll = -0.5 * np.sum(w * (d * np.log(np.where(w > 0, psi, 1.0)) + S / np.where(w > 0, psi, 1.0)), axis=1)
+        p = np.where(w > 0, psi, 1.0)
+        ll = -0.5 * np.sum(w * (d * np.log(p) + S / p), axis=1)
     return np.where(ok, ll, -np.inf)
 
 
@@ -395,7 +396,8 @@ def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: in
 
     def quant(b, p):
         k2 = (2.0 / n_dims) * (m2[:, 0] * b * b + m2[:, 1] * b * s + m2[:, 2] * s * s)
-        k3 = (8.0 / n_dims**2) * (m3[:, 0] * b**3 + m3[:, 1] * b * b * s + m3[:, 2] * b * s * s + m3[:, 3] * s**3)
+        k3 = (8.0 / n_dims**2) * (m3[:, 0] * b**3 + m3[:, 1] * b * b * s + m3[:, 2] * b * s * s
+                                  + m3[:, 3] * s**3)
         return _gamma_quantile(b, k2, k3, p)
 
     scale = np.maximum(np.abs(b_hat), np.sqrt(np.maximum(m2[:, 2] * s * s, 0.0))) + 1e-300
@@ -478,7 +480,7 @@ def msd_covariance_terms(n_steps: int, n_lags: int) -> tuple[np.ndarray, np.ndar
 
 @lru_cache(maxsize=4096)
 def slope_variance_terms(n_steps: int, p_max: int) -> np.ndarray:
-    """(p_max + 1, 3) coefficients (k_bb, k_ab, k_aa) of Var(slope) of an unweighted fit on lags 1..p, per axis.
+    """(p_max + 1, 3) coefficients (k_bb, k_ab, k_aa) of Var(slope) of a fit on lags 1..p, per axis.
 
     Rows p < 2 are NaN. Var(b_hat) = k_bb b^2 + 2 k_ab a b + k_aa a^2.
     """

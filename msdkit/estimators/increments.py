@@ -46,7 +46,7 @@ class Steps:
 
 
 def collect_steps(tracks: pd.DataFrame, n_dims: int) -> Steps:
-    """Steps between consecutive frames, grouped by track and segment (see module notes)."""
+    """Collect the steps between consecutive frames, grouped by track and segment (see module notes)."""
     tr = _Tracks(tracks, n_dims)
     n_rows = tr.frame.size
     row_track = np.repeat(np.arange(tr.ids.size), tr.count)
@@ -93,9 +93,9 @@ def sine_modes(st: Steps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
     Notes
     -----
-    The steps of one segment have the tridiagonal covariance b I + a T (T = tridiag(-1, 2, -1)) per axis, which
-    the orthonormal DST-I diagonalises with eigenvalues psi_k = b + a lambda_k (Berglund 2010, Phys. Rev. E
-    82:011917; Vestergaard, Blainey & Flyvbjerg 2014, Phys. Rev. E 89:022726).
+    The steps of one segment have the tridiagonal covariance b I + a T (T = tridiag(-1, 2, -1)) per axis,
+    which the orthonormal DST-I diagonalises with eigenvalues psi_k = b + a lambda_k (Berglund 2010, Phys.
+    Rev. E 82:011917; Vestergaard, Blainey & Flyvbjerg 2014, Phys. Rev. E 89:022726).
     """
     total = st.steps.shape[0]
     lam = np.empty(total)
