@@ -87,7 +87,7 @@ def _run(cfg, *, output: str | None, force: bool, quiet: bool) -> int:
     result = run_batch(cfg, output_dir=output, force=force, progress=not quiet)
     rows = result.rows
     _print_table(rows)
-    out = Path(output) if output else cfg.output_path()
+    out = (Path(output) if output else cfg.output_path()).resolve()
     n_fail = sum(r.status != "ok" for r in rows)
     print(f"\n{len(rows) - n_fail} of {len(rows)} inputs ok. Results: {out}  Report: {out / 'report.html'}")
     return EXIT_SOME_FAILED if n_fail else EXIT_OK
