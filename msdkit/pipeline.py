@@ -144,6 +144,10 @@ def analyze_tracks(
     if getattr(sample_fit, "sigma_um", None) is not None and np.isfinite(sample_fit.sigma_um):
         track_fits = fit.fit_tracks(tracks, method=estimator, sigma_um=max(float(sample_fit.sigma_um), 0.0), **kw)
     ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
+    if max_lag_frames is None and len(ens):
+        # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
+        enough = ens["n_tracks"].to_numpy() >= max(5, 0.1 * n_tracks)
+        ens = ens[np.cumprod(enough).astype(bool)].reset_index(drop=True) if enough[0] else ens.iloc[:1]
 
     classes = classify.classify_tracks(
         tracks, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
