@@ -17,6 +17,7 @@ _N_FOLDS = 5
 # _STRENGTH_MIN only while the weakest is still clearly the best, down to _STRENGTH_FLOOR.
 _STRENGTH_MAX, _STRENGTH_MIN, _STRENGTH_FLOOR = 10.0, 1e-6, 1e-8
 _MIN_TRACKS_CV = 50
+_MAX_TRACKS_CV = 5000  # larger samples choose the strength on a random subset (a slightly stronger one)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -249,10 +250,15 @@ def choose_and_fit(L, row_max, weight, basis: _Basis, params0, *, rng=0):
 
     Returns θ on the grid and a dict describing the choice (strength, rule, cross-validated log-likelihoods).
     """
-    n_used = L.shape[0]
+    n_all = L.shape[0]
     method: dict = {}
-    if n_used >= _MIN_TRACKS_CV:
+    if n_all >= _MIN_TRACKS_CV:
         g = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(rng)
+        cv = slice(None)
+        if n_all > _MAX_TRACKS_CV:
+            cv = np.sort(g.choice(n_all, _MAX_TRACKS_CV, replace=False))
+        Lc, rc, wc = L[cv], row_max[cv], weight[cv]
+        n_used = Lc.shape[0]
         fold = g.permutation(n_used) % _N_FOLDS
         fold_params = [params0] * _N_FOLDS
         strengths: list[float] = []
@@ -262,10 +268,8 @@ def choose_and_fit(L, row_max, weight, basis: _Basis, params0, *, rng=0):
             row = np.empty(n_used)
             for f in range(_N_FOLDS):
                 train, test = fold != f, fold == f
-                fold_params[f] = _fit_penalised(L[train], weight[train], basis, lam, fold_params[f])
-                row[test] = _heldout_scores(
-                    L[test], row_max[test], weight[test], _theta_of(basis, fold_params[f])
-                )
+                fold_params[f] = _fit_penalised(Lc[train], wc[train], basis, lam, fold_params[f])
+                row[test] = _heldout_scores(Lc[test], rc[test], wc[test], _theta_of(basis, fold_params[f]))
             strengths.append(lam)
             rows.append(row)
             lam /= 10.0
@@ -281,6 +285,8 @@ def choose_and_fit(L, row_max, weight, basis: _Basis, params0, *, rng=0):
         diff_se = np.sqrt(n_used * np.var(scores - scores[best], axis=1))
         chosen = int(np.min(np.flatnonzero(total >= total[best] - diff_se)))
         rule = f"{_N_FOLDS}-fold cross-validation, one-SE rule"
+        if n_all > _MAX_TRACKS_CV:
+            rule += f" (on {_MAX_TRACKS_CV} random tracks)"
         method["cv_log_likelihood"] = [float(v) for v in total]
         method["cv_strengths"] = strengths
     else:
