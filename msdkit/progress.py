@@ -129,6 +129,7 @@ class BatchProgress:
         self._log_every_s = log_every_s
         self._last_logged: dict[str, float] = {}
         self._bars: dict[str, object] = {}
+        self._finished: set[str] = set()  # frame counts can arrive after the stack's result: ignore them
         self._main = None
         if mode == "bars":
             from tqdm import tqdm
@@ -146,6 +147,8 @@ class BatchProgress:
 
     def frames(self, stack: str, frames_done: int, frames_total: int) -> None:
         """Record that ``stack`` has ``frames_done`` of ``frames_total`` frames processed."""
+        if stack in self._finished:
+            return
         if self.mode == "bars":
             from tqdm import tqdm
 
@@ -170,6 +173,7 @@ class BatchProgress:
     def finished(self, row) -> None:
         """Record a completed stack (a :class:`msdkit.batch.StackRow`)."""
         self.n_done += 1
+        self._finished.add(row.stack)
         self._last_logged.pop(row.stack, None)
         bar = self._bars.pop(row.stack, None)
         if bar is not None:
