@@ -219,7 +219,7 @@ def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400)
         return f, grad
 
     x0 = np.concatenate([params0[:2], params0[2:] / scale])
-    x = _lbfgs(fun, x0, max_iter=max_iter)
+    x = _lbfgs(fun, x0, max_iter=max_iter, tol=1e-5 / W)  # stop when the total log-likelihood gains < 1e-5
     return np.concatenate([x[:2], x[2:] * scale])
 
 
