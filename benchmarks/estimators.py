@@ -15,6 +15,7 @@ Usage: python benchmarks/estimators.py [--scale 1.0] [--seed 1] [--markdown out.
 from __future__ import annotations
 
 import argparse
+import json
 import time
 
 import numpy as np
@@ -29,11 +30,11 @@ def n_tracks_for(N: int, scale: float) -> int:
     return int(scale * min(40000, max(4000, 2_000_000 // N)))
 
 
-def run(scale: float, seed: int):
+def run(scale: float, seed: int, sizes=(20, 50, 100, 500)):
     dt, D = 0.01, 1.0
     rows = []
     g = np.random.default_rng(seed)
-    for N in (20, 50, 100, 500):
+    for N in sizes:
         M = n_tracks_for(N, scale)
         for x in (0.1, 1.0, 10.0):
             for R in (0.0, 1.0 / 6.0):
@@ -53,11 +54,11 @@ def run(scale: float, seed: int):
                     hi = f["D_ci95_hi_um2_s"].to_numpy()[ok]
                     rel = Dh / D
                     rows.append(dict(
-                        N=N, x=x, R=R, method=m, used=f["method"].iloc[0], M=int(ok.sum()),
-                        bias=rel.mean() - 1, bias_se=rel.std(ddof=1) / np.sqrt(rel.size),
-                        rel_sd=rel.std(ddof=1), crb=crb, ratio=rel.std(ddof=1) / crb,
-                        coverage=np.mean((lo <= D) & (hi >= D)), inf_hi=np.mean(~np.isfinite(hi)),
-                        seconds=el,
+                        N=N, x=x, R=R, method=m, used=str(f["method"].iloc[0]), M=int(ok.sum()),
+                        bias=float(rel.mean() - 1), bias_se=float(rel.std(ddof=1) / np.sqrt(rel.size)),
+                        rel_sd=float(rel.std(ddof=1)), crb=crb, ratio=float(rel.std(ddof=1) / crb),
+                        coverage=float(np.mean((lo <= D) & (hi >= D))),
+                        inf_hi=float(np.mean(~np.isfinite(hi))), seconds=el,
                     ))
                     r = rows[-1]
                     print(f"N={N:4d} x={x:5.1f} R={R:.3f} {m:10s}->{r['used']:10s} M={r['M']:6d} "
@@ -98,9 +99,21 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scale", type=float, default=1.0, help="multiplies the number of tracks per cell")
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--sizes", default="20,50,100,500", help="comma-separated track lengths N")
     ap.add_argument("--markdown", help="also write the table to this file")
+    ap.add_argument("--json", help="also write the rows to this file (for merging runs with --merge)")
+    ap.add_argument("--merge", nargs="*", default=[], help="rows of earlier --json runs to add")
     args = ap.parse_args()
-    rows = run(args.scale, args.seed)
+    rows = []
+    for path in args.merge:
+        with open(path) as fh:
+            rows += json.load(fh)
+    sizes = tuple(int(v) for v in args.sizes.split(",") if v)
+    new = run(args.scale, args.seed, sizes) if sizes else []
+    if args.json:
+        with open(args.json, "w") as fh:
+            json.dump(new, fh)
+    rows += new
     md = markdown(rows)
     print()
     print(md)

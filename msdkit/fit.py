@@ -178,9 +178,28 @@ def _pooled_modes(modes, usable: np.ndarray):
     return lam[keep], power[keep], np.searchsorted(idx, mode_track[keep])
 
 
-def _pooled_ml(lam, power, n_dims: int):
-    """Maximum likelihood (b, a) shared by all modes given."""
-    bb, aa, _, _ = dif.ml_fit(lam[None], power[None], np.ones((1, lam.size)), n_dims=n_dims)
+def _pooled_ml(st: Steps, modes, usable: np.ndarray, n_dims: int):
+    """Maximum likelihood (b, a) shared by all modes of the usable tracks.
+
+    Modes with the same segment length m and index k have the same lambda, so the likelihood only needs
+    their count and summed power per (m, k): the fit runs on at most (number of distinct lengths) x m values
+    instead of every step.
+    """
+    lam, power, mode_track = modes
+    keep = usable[mode_track].astype(float)
+    m = np.repeat(st.seg_len, st.seg_len)
+    k = np.arange(m.size) - np.repeat(st.seg_start, st.seg_len)
+    lens = np.unique(st.seg_len)
+    off = np.zeros(int(lens.max(initial=0)) + 1, np.int64)
+    off[lens] = np.concatenate([[0], np.cumsum(lens)[:-1]])
+    code = off[m] + k
+    n_codes = int(lens.sum())
+    cnt = np.bincount(code, weights=keep, minlength=n_codes)
+    tot = np.bincount(code, weights=keep * power, minlength=n_codes)
+    lam_c = np.zeros(n_codes)
+    lam_c[code] = lam
+    sel = cnt > 0
+    bb, aa, _, _ = dif.ml_fit(lam_c[sel][None], (tot[sel] / cnt[sel])[None], cnt[sel][None], n_dims=n_dims)
     return float(bb[0]), float(aa[0])
 
 
@@ -196,7 +215,7 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     lam, power, _ = modes
     rho = 0.0
     if kind == "one_step":
-        b0, a0 = _pooled_ml(*_pooled_modes(modes, usable)[:2], n_dims)
+        b0, a0 = _pooled_ml(st, modes, usable, n_dims)
         rho = a0 / b0 if b0 > 0 else 0.0
     else:
         b0, a0 = dif.covariance_estimate(st.sum_sq[usable].sum(), st.n_steps[usable].sum(),
@@ -307,7 +326,8 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
         for N in np.unique(ns):
             sel = ns == N
             C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], s_shared - R * b_t[sel], n_dims)
-        theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr)
+        theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr,
+                                        n_iter=20)
         for _pass in range(3):
             th_a = np.clip(theta[:, 1], *an.ALPHA_BOUNDS)
             K_frame = np.exp(theta[:, 0]) * dt**th_a
@@ -318,7 +338,7 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
             Cinv = _stable_inverse(C)
             if _pass < 2:
                 theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
-                                                theta0=theta)
+                                                theta0=theta, n_iter=20)
         _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
         H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -591,8 +611,9 @@ def fit_sample(
             sums = cnt @ per
             return dif.covariance_estimate(*sums.T, n_dims=d, R=R)[0]
     elif chosen in ("likelihood", "one_step_likelihood"):
-        lam, power, mode_track = _pooled_modes(sine_modes(st), usable)
-        b, a = _pooled_ml(lam, power, d)
+        modes = sine_modes(st)
+        lam, power, mode_track = _pooled_modes(modes, usable)
+        b, a = _pooled_ml(st, modes, usable, d)
         psi = b + a * lam
         res = power / d - psi
         r = 1.0 / psi**2

@@ -366,7 +366,11 @@ def weighted_chi2_moments(c, lam, w, *, R: float):
 
 
 def _gamma_quantile(mean, k2, k3, p):
-    """Quantile p of the shifted gamma law with the given mean, variance k2 and third cumulant k3."""
+    """Quantile p of the shifted gamma law with the given mean, variance k2 and third cumulant k3.
+
+    The standardised gamma quantile uses the Wilson-Hilferty cube-root approximation for shape >= 20
+    (relative error below 1e-3 in the 2.5 % tails) and the exact inverse incomplete gamma function otherwise.
+    """
     sd = np.sqrt(np.maximum(k2, 1e-300))
     skew = k3 / sd**3
     z = special.ndtri(p)
@@ -374,14 +378,18 @@ def _gamma_quantile(mean, k2, k3, p):
     sk = np.where(small, 1.0, skew)
     shape = 4.0 / (sk * sk)
     sign = np.sign(sk)
-    pp = np.where(sign > 0, p, 1.0 - p)
-    with np.errstate(over="ignore", invalid="ignore"):
-        g = special.gammaincinv(shape, pp)
+    zz = np.where(sign > 0, z, -z)
+    g = shape * (1.0 - 1.0 / (9.0 * shape) + zz / (3.0 * np.sqrt(shape))) ** 3
+    exact = shape < 20
+    if exact.any():
+        pp = np.where(sign > 0, p, 1.0 - p)
+        with np.errstate(over="ignore", invalid="ignore"):
+            g[exact] = special.gammaincinv(shape[exact], pp[exact])
     q = mean + sign * sd * (g - shape) / np.sqrt(shape)
     return np.where(small, mean + z * sd, q)
 
 
-def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: int = 40):
+def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: int = 26):
     """95 % interval for b > 0 by inverting quantiles of a weighted chi-square sum at each hypothesised b.
 
     b is in the interval when b_hat lies between the 2.5 % and 97.5 % quantiles of its distribution under
@@ -404,8 +412,8 @@ def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: in
     out = []
     for p, side in ((p_hi, "lo"), (p_lo, "hi")):
         # f(b) = quantile_p(b) - b_hat is increasing in b; find its root on a log scale in b
-        lo_b = np.log(scale * 1e-7)
-        hi_b = np.log(scale * 1e7)
+        lo_b = np.log(scale * 1e-4)
+        hi_b = np.log(scale * 1e4)
         f_lo = quant(np.exp(lo_b), p) - b_hat
         f_hi = quant(np.exp(hi_b), p) - b_hat
         for _ in range(n_iter):
