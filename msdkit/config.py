@@ -29,6 +29,7 @@ class AcquisitionConfig(BaseModel):
     pixel_size_um: Annotated[float, Field(gt=0)] | None = None
     frame_interval_s: Annotated[float, Field(gt=0)] | None = None
     exposure_s: Annotated[float, Field(ge=0)] | None = None  # None: same as frame_interval_s
+    channel: Annotated[int, Field(ge=0)] | None = None  # which channel of a multichannel movie to track
 
     @model_validator(mode="after")
     def _exposure_fits_frame(self):

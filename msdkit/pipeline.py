@@ -236,7 +236,7 @@ def movie_to_tracks(
     from .io.stacks import open_stack
 
     det, lnk = cfg.detection, cfg.linking
-    with open_stack(path) as stack:
+    with open_stack(path, channel=cfg.acquisition.channel) as stack:
         pixel, dt, exposure = _acquisition(cfg, stack.metadata, path)
         if pixel is None:
             raise InputError(
