@@ -162,20 +162,20 @@ def analyze_tracks(
     )
 
     radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
-    D_tracks = track_fits["D_um2_s"].to_numpy(float)
-    if wall_distance_um is not None:
-        D_tracks = hydro.wall_corrected_D_um2_s(D_tracks, wall_distance_um=wall_distance_um, **radius_kw)
-    track_fits["radius_nm"] = hydro.stokes_einstein_radius_nm(D_tracks, **radius_kw)
+    sigma = getattr(sample_fit, "sigma_um", None)
+    sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
+    size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+    size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
+    dist = sizing.size_distribution(size_input, wall_distance_um=wall_distance_um, rng=seed, **radius_kw, **size_kw)
+    # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
+    per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
+    track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
 
     sample_D = float(sample_fit.D_um2_s)
     D_lo, D_hi = (float(v) for v in sample_fit.D_ci95_um2_s)
     size = hydro.stokes_einstein_size(
         sample_D, D_ci95_um2_s=(D_lo, D_hi), temperature_c=temperature_c, temperature_sd_c=temperature_sd_c,
         medium=medium, wall_distance_um=wall_distance_um,
-    )
-    dist = sizing.size_distribution(
-        track_fits, temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s,
-        frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims,
     )
 
     flags = list(motion.flags)
