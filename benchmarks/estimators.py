@@ -70,8 +70,8 @@ def run(scale: float, seed: int, sizes=(20, 50, 100, 500)):
 
 
 def markdown(rows) -> str:
-    out = ["| N | x | R | CRB % | " + " | ".join(f"{m} bias % / SD÷CRB / cover %" for m in METHODS) + " |",
-           "|---|---|---|---|" + "---|" * len(METHODS)]
+    out = ["| N | x | R | tracks | CRB % | " + " | ".join(f"{m} bias % / SD÷CRB / cover %" for m in METHODS)
+           + " |", "|---|---|---|---|---|" + "---|" * len(METHODS)]
     keys = sorted({(r["N"], r["x"], r["R"]) for r in rows})
     for k in keys:
         cell = {r["method"]: r for r in rows if (r["N"], r["x"], r["R"]) == k}
@@ -80,8 +80,10 @@ def markdown(rows) -> str:
         for m in METHODS:
             r = cell[m]
             tag = f" ({r['used'][:3]})" if m == "auto" else ""
-            parts.append(f"{100 * r['bias']:+.2f} / {r['ratio']:.3f} / {100 * r['coverage']:.1f}{tag}")
-        out.append(f"| {k[0]} | {k[1]:g} | {k[2]:.3g} | {100 * crb:.1f} | " + " | ".join(parts) + " |")
+            se = f"±{100 * r['bias_se']:.2f}" if m == "auto" else ""
+            parts.append(f"{100 * r['bias']:+.2f}{se} / {r['ratio']:.3f} / {100 * r['coverage']:.1f}{tag}")
+        M = next(iter(cell.values()))["M"]
+        out.append(f"| {k[0]} | {k[1]:g} | {k[2]:.3g} | {M} | {100 * crb:.1f} | " + " | ".join(parts) + " |")
     auto = [r for r in rows if r["method"] == "auto"]
     out.append("")
     out.append(f"auto: max |bias| {100 * max(abs(r['bias']) for r in auto):.2f} %, max SD/CRB "
