@@ -89,8 +89,8 @@ def throughput(work: Path, n_stacks: int, n_frames: int, size_px: int) -> None:
         busy = sum(r.run_s for r in res.rows)
         results[n_workers] = (res, wall)
         print(f"  {n_workers} worker(s): {wall:7.1f} s wall, {total_frames / wall:7.1f} frames/s "
-              f"({res.n_ok}/{len(res.rows)} ok; time inside the pipeline {busy:.1f} s; load average before "
-              f"{load:.1f})")
+              f"({res.n_ok}/{len(res.rows)} ok; time inside the pipeline {busy:.1f} s, workers busy "
+              f"{100 * busy / (wall * n_workers):.0f} % of the wall time; load average before {load:.1f})")
     (r1, w1), (r2, w2) = results[1], results[2]
     print(f"  scaling ratio (2 workers / 1 worker): {w1 / w2:.2f}  (target >= 1.7 on 2 free cores)")
     t1 = r1.table().drop(columns=["run_s", "input", "resumed"])
