@@ -106,9 +106,11 @@ def simulate_sample(kind: str, rng: np.random.Generator):
     return tracks, e, truth
 
 
-def run_sample_flags(n_samples: int, rng: np.random.Generator) -> pd.DataFrame:
+def run_sample_flags(
+    n_samples: int, rng: np.random.Generator, kinds=("brownian", "fbm", "drift")
+) -> pd.DataFrame:
     rows = []
-    for kind in ("brownian", "fbm", "drift"):
+    for kind in kinds:
         for _ in range(n_samples):
             tracks, e, truth = simulate_sample(kind, rng)
             drift = estimate_drift(tracks, frame_interval_s=DT)
@@ -160,6 +162,8 @@ def report_sample_flags(df: pd.DataFrame) -> None:
     b = df[df.condition == "brownian"]
     f = df[df.condition == "fbm"]
     d = df[df.condition == "drift"]
+    if len(f) == 0 or len(d) == 0:
+        return
     print(
         f"\nfalse `subdiffusive` on Brownian: {b['flag_subdiffusive'].mean():.3f} (target <= 0.05; "
         f"x >= 2: {b.loc[b.x >= 2, 'flag_subdiffusive'].mean():.3f})"
@@ -330,7 +334,12 @@ def main() -> None:
     ap.add_argument("--tracks-per-class", type=int, default=400)
     ap.add_argument("--alpha-tracks", type=int, default=2000)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--only-flags", default="", help="comma-separated sample conditions; skip parts 2 and 3")
     args = ap.parse_args()
+    if args.only_flags:
+        report_sample_flags(run_sample_flags(args.samples, np.random.default_rng(args.seed),
+                                             tuple(args.only_flags.split(","))))
+        return
     rng = np.random.default_rng(args.seed)
     t0 = time.perf_counter()
     report_confusion(run_confusion(args.tracks_per_class, rng))

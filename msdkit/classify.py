@@ -608,6 +608,7 @@ def sample_motion(
     min_tracks: int = 20,
     min_class_fraction: float = 0.25,
     eb_lag_frames: int = 1,
+    alpha_tolerance: float = 0.02,
     n_boot: int = 400,
     rng=0,
 ) -> SampleMotion:
@@ -633,6 +634,9 @@ def sample_motion(
         provided it is also significantly above the 5 % a class gets by chance (binomial test, p < 0.001).
     eb_lag_frames : int, default=1
         Lag of the ergodicity-breaking parameter.
+    alpha_tolerance : float, default=0.02
+        Margin for the model accuracy of the ensemble alpha: ``subdiffusive`` needs the upper end of its 95 %
+        interval below 1 − tolerance, ``superdiffusive`` the lower end above 1 + tolerance.
     n_boot : int, default=400
         Bootstrap replicates over tracks.
     rng : int, Generator or None
@@ -645,8 +649,9 @@ def sample_motion(
     -----
     Flags (plain words), each with its number in ``numbers``:
 
-    * ``subdiffusive``: the upper end of the 95 % interval of the ensemble alpha is below 1
-      (``alpha_ci95_hi``); ``superdiffusive``: its lower end is above 1 (``alpha_ci95_lo``).
+    * ``subdiffusive``: the upper end of the 95 % interval of the ensemble alpha is below
+      1 − ``alpha_tolerance`` (``alpha_ci95_hi``); ``superdiffusive``: its lower end is above 1 + ``alpha_tolerance``
+      (``alpha_ci95_lo``).
     * ``confined`` / ``directed``: at least ``min_class_fraction`` of the classified tracks are confined /
       directed and that fraction is significantly above 5 % (``fraction_confined``, ``fraction_directed``).
     * ``heterogeneous``: per-track amplitudes (D, or K at the ensemble alpha) spread more than their finite-
@@ -822,9 +827,9 @@ def sample_motion(
         "alpha_ci95_hi": float(alpha_ci[1]),
         "n_tracks_used": n_used,
     }
-    if np.isfinite(alpha_ci[1]) and alpha_ci[1] < 1.0:
+    if np.isfinite(alpha_ci[1]) and alpha_ci[1] < 1.0 - alpha_tolerance:
         flags.append("subdiffusive")
-    if np.isfinite(alpha_ci[0]) and alpha_ci[0] > 1.0:
+    if np.isfinite(alpha_ci[0]) and alpha_ci[0] > 1.0 + alpha_tolerance:
         flags.append("superdiffusive")
     n_classified = sum(counts[c] for c in MOTION_CLASSES if c != "undetermined")
     for c in ("confined", "directed"):
