@@ -650,8 +650,8 @@ def sample_motion(
     Flags (plain words), each with its number in ``numbers``:
 
     * ``subdiffusive``: the upper end of the 95 % interval of the ensemble alpha is below
-      1 − ``alpha_tolerance`` (``alpha_ci95_hi``); ``superdiffusive``: its lower end is above 1 + ``alpha_tolerance``
-      (``alpha_ci95_lo``).
+      1 − ``alpha_tolerance`` (``alpha_ci95_hi``); ``superdiffusive``: its lower end is above
+      1 + ``alpha_tolerance`` (``alpha_ci95_lo``).
     * ``confined`` / ``directed``: at least ``min_class_fraction`` of the classified tracks are confined /
       directed and that fraction is significantly above 5 % (``fraction_confined``, ``fraction_directed``).
     * ``heterogeneous``: per-track amplitudes (D, or K at the ensemble alpha) spread more than their finite-
