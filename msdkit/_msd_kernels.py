@@ -216,3 +216,64 @@ def gapped_finish(G, f1, n_lag, scale, msd, pairs):  # pragma: no cover - compil
             cnt = np.int64(np.rint(scale * fc))
             pairs[r, n] = cnt
             msd[r, n] = scale * fn / cnt if cnt > 0 else np.nan
+
+
+@numba.njit(cache=True)
+def step_statistics(c0, c1, c2, n_dims, frame, start, count):  # pragma: no cover - compiled
+    """Collect the steps between consecutive frames of every track and their per-track sums.
+
+    Returns steps (n_steps_total, n_dims), step_track, seg_start, seg_len (runs of adjacent steps), and per
+    track: n_steps, n_pairs (adjacent step pairs), sum_sq (sum over steps and axes of squares) and sum_cross
+    (sum over adjacent pairs and axes of products).
+    """
+    n_tr = start.size
+    total = 0
+    n_seg = 0
+    for t in range(n_tr):
+        s = start[t]
+        prev_ok = False
+        for i in range(s, s + count[t] - 1):
+            ok = frame[i + 1] - frame[i] == 1
+            if ok:
+                total += 1
+                if not prev_ok:
+                    n_seg += 1
+            prev_ok = ok
+    steps = np.empty((total, n_dims))
+    step_track = np.empty(total, np.int64)
+    seg_start = np.empty(n_seg, np.int64)
+    seg_len = np.zeros(n_seg, np.int64)
+    n_steps = np.zeros(n_tr, np.int64)
+    n_pairs = np.zeros(n_tr, np.int64)
+    sum_sq = np.zeros(n_tr)
+    sum_cross = np.zeros(n_tr)
+    k = 0
+    g = -1
+    for t in range(n_tr):
+        s = start[t]
+        prev_ok = False
+        for i in range(s, s + count[t] - 1):
+            ok = frame[i + 1] - frame[i] == 1
+            if ok:
+                if not prev_ok:
+                    g += 1
+                    seg_start[g] = k
+                seg_len[g] += 1
+                sq = 0.0
+                cr = 0.0
+                for d in range(n_dims):
+                    c = c0 if d == 0 else (c1 if d == 1 else c2)
+                    v = c[i + 1] - c[i]
+                    steps[k, d] = v
+                    sq += v * v
+                    if prev_ok:
+                        cr += v * steps[k - 1, d]
+                step_track[k] = t
+                n_steps[t] += 1
+                sum_sq[t] += sq
+                if prev_ok:
+                    n_pairs[t] += 1
+                    sum_cross[t] += cr
+                k += 1
+            prev_ok = ok
+    return steps, step_track, seg_start, seg_len, n_steps, n_pairs, sum_sq, sum_cross

@@ -287,7 +287,7 @@ def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
         reps = []
         for s0 in range(0, n_boot, 200):
             nb = min(200, n_boot - s0)
-            cnt = np.stack([np.bincount(g.integers(0, T, T), minlength=T) for _ in range(nb)]).astype(float)
+            cnt = _boot_counts(g, T, nb)
             ens_b = (cnt @ (W * Y)) / np.maximum(cnt @ W, 1e-300)
             th_b, _, _ = an.gls_power_law(ens_b, t, Cinv, exposure_s=exposure_s, s=None,
                                            theta0=np.repeat(theta, nb, axis=0))
@@ -535,7 +535,9 @@ class SampleFit:
 
 
 def _boot_counts(g, T, nb):
-    return np.stack([np.bincount(g.integers(0, T, T), minlength=T) for _ in range(nb)]).astype(float)
+    """(nb, T) counts of each track in nb resamples of T tracks with replacement."""
+    draws = g.integers(0, T, (nb, T)) + (np.arange(nb) * T)[:, None]
+    return np.bincount(draws.ravel(), minlength=nb * T).reshape(nb, T).astype(float)
 
 
 def fit_sample(

@@ -356,12 +356,20 @@ def weighted_chi2_moments(c, lam, w, *, R: float):
     sum (c psi)^2 = m2 . (b^2, b s, s^2) and sum (c psi)^3 = m3 . (b^3, b^2 s, b s^2, s^3) (binomial factors
     included).
     """
+    c = np.where(w > 0, c, 0.0)
+    c2 = c * c
+    c3 = c2 * c
+    lam2 = lam * lam
+    dot = lambda a, b: np.einsum("ij,ij->i", a, b)  # noqa: E731
+    if R == 0:
+        m2 = np.stack([c2.sum(1), 2 * dot(c2, lam), dot(c2, lam2)], 1)
+        m3 = np.stack([c3.sum(1), 3 * dot(c3, lam), 3 * dot(c3, lam2), dot(c3 * lam, lam2)], 1)
+        return m2, m3
     u = 1.0 - R * lam
-    c = c * (w > 0)
-    m2 = np.stack([(c * c * u * u).sum(1), 2 * (c * c * u * lam).sum(1), (c * c * lam * lam).sum(1)], 1)
-    c3 = c * c * c
-    m3 = np.stack([(c3 * u**3).sum(1), 3 * (c3 * u * u * lam).sum(1), 3 * (c3 * u * lam * lam).sum(1),
-                   (c3 * lam**3).sum(1)], 1)
+    cu2 = c2 * u
+    cu3 = c3 * u
+    m2 = np.stack([dot(cu2, u), 2 * dot(cu2, lam), dot(c2, lam2)], 1)
+    m3 = np.stack([dot(cu3 * u, u), 3 * dot(cu3 * u, lam), 3 * dot(cu3, lam2), dot(c3 * lam, lam2)], 1)
     return m2, m3
 
 

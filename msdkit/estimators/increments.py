@@ -47,37 +47,16 @@ class Steps:
 
 def collect_steps(tracks: pd.DataFrame, n_dims: int) -> Steps:
     """Collect the steps between consecutive frames, grouped by track and segment (see module notes)."""
+    from .. import _msd_kernels as k
+
     tr = _Tracks(tracks, n_dims)
-    n_rows = tr.frame.size
-    row_track = np.repeat(np.arange(tr.ids.size), tr.count)
-    if n_rows > 1:
-        consecutive = (row_track[1:] == row_track[:-1]) & (np.diff(tr.frame) == 1)
-    else:
-        consecutive = np.zeros(0, bool)
-    where = np.flatnonzero(consecutive)
-    steps = np.empty((where.size, n_dims))
-    for d, c in enumerate(tr.coords):
-        steps[:, d] = c[where + 1] - c[where]
-    step_track = row_track[where]
-    n_tr = tr.ids.size
-    n_steps = np.bincount(step_track, minlength=n_tr)
-    sum_sq = np.bincount(step_track, weights=np.einsum("ij,ij->i", steps, steps), minlength=n_tr)
-    # adjacent steps k, k+1 share the middle position: rows where[k] + 1 == where[k+1]
-    adjacent = np.flatnonzero(where[1:] == where[:-1] + 1)
-    pair_track = step_track[adjacent]
-    n_pairs = np.bincount(pair_track, minlength=n_tr)
-    sum_cross = np.bincount(
-        pair_track, weights=np.einsum("ij,ij->i", steps[adjacent], steps[adjacent + 1]), minlength=n_tr
-    )
-    new_seg = np.ones(where.size, bool)
-    new_seg[1:] = where[1:] != where[:-1] + 1
-    seg_start = np.flatnonzero(new_seg)
-    seg_len = np.diff(np.append(seg_start, where.size))
+    c = tr.coords + [tr.coords[0]] * (3 - n_dims)
+    steps, step_track, seg_start, seg_len, n_steps, n_pairs, sum_sq, sum_cross = k.step_statistics(
+        c[0], c[1], c[2], n_dims, tr.frame, tr.start, tr.count)
     return Steps(
-        ids=tr.ids, n_points=tr.count, n_steps=n_steps.astype(np.int64), n_pairs=n_pairs.astype(np.int64),
-        sum_sq=sum_sq, sum_cross=sum_cross, steps=steps, step_track=step_track, seg_start=seg_start,
-        seg_len=seg_len, seg_track=step_track[seg_start] if where.size else np.zeros(0, np.int64),
-        n_dims=n_dims,
+        ids=tr.ids, n_points=tr.count, n_steps=n_steps, n_pairs=n_pairs, sum_sq=sum_sq, sum_cross=sum_cross,
+        steps=steps, step_track=step_track, seg_start=seg_start, seg_len=seg_len,
+        seg_track=step_track[seg_start], n_dims=n_dims,
     )
 
 
