@@ -86,9 +86,16 @@ def sine_modes(st: Steps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     bounds = np.flatnonzero(np.diff(lens)) + 1
     for grp in np.split(order, bounds):
         m = int(st.seg_len[grp[0]])
+        lam_m = 2.0 * (1.0 - np.cos(np.pi * np.arange(1, m + 1) / (m + 1)))
+        s0 = int(st.seg_start[grp[0]])
+        if np.array_equal(st.seg_start[grp], s0 + m * np.arange(grp.size)):  # back to back: views
+            sl = slice(s0, s0 + m * grp.size)
+            coef = scipy.fft.dst(st.steps[sl].reshape(grp.size, m, -1), type=1, axis=1, norm="ortho")
+            power[sl] = np.einsum("smd,smd->sm", coef, coef).ravel()
+            lam[sl].reshape(grp.size, m)[:] = lam_m
+            continue
         idx = st.seg_start[grp][:, None] + np.arange(m)[None, :]
-        block = st.steps[idx]  # (n_seg, m, n_dims)
-        coef = scipy.fft.dst(block, type=1, axis=1, norm="ortho")
+        coef = scipy.fft.dst(st.steps[idx], type=1, axis=1, norm="ortho")  # (n_seg, m, n_dims)
         power[idx] = np.einsum("smd,smd->sm", coef, coef)
-        lam[idx] = 2.0 * (1.0 - np.cos(np.pi * np.arange(1, m + 1) / (m + 1)))[None, :]
+        lam[idx] = lam_m[None, :]
     return lam, power, st.step_track
