@@ -43,8 +43,15 @@ import pandas as pd
 from .errors import FitError, expected_got
 from .estimators import anomalous as an
 from .estimators import diffusion as dif
+from .estimators.alpha_fits import (
+    ALPHA_MAX_LAG,
+    ALPHA_N_LAGS,
+    _alpha_columns,
+    _boot_counts,
+    _msd_matrix,
+    _sample_power_law,
+)
 from .estimators.increments import Steps, collect_steps, sine_modes
-from .msd import time_averaged_msd
 
 __all__ = ["fit_tracks", "fit_sample", "SampleFit", "cramer_rao_relative_sd", "METHODS", "AUTO_X_SWITCH"]
 
@@ -53,9 +60,6 @@ METHODS = ("auto", "covariance", "likelihood", "one_step_likelihood", "msd_fit")
 AUTO_X_SWITCH = 0.3
 #: Largest lag for the optimal-lag MSD fit.
 MSD_FIT_MAX_LAG = 40
-#: Largest lag and number of lags for fits of the anomalous exponent.
-ALPHA_MAX_LAG = 50
-ALPHA_N_LAGS = 10
 #: Elements (tracks x modes) per chunk of the vectorised likelihood fit.
 _CHUNK = 1 << 21
 
@@ -245,133 +249,6 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     return out["b"], out["a"], out["lo"], out["hi"]
 
 
-def _msd_matrix(tracks, st: Steps, max_lag: int, n_dims: int):
-    """Per-axis TA-MSD (n_tracks, max_lag) and pair counts, NaN where a lag has no pair."""
-    ta = time_averaged_msd(tracks, max_lag_frames=max_lag, n_dims=n_dims)
-    row = np.searchsorted(st.ids, ta["track"].to_numpy())
-    col = ta["lag_frames"].to_numpy() - 1
-    y = np.full((st.ids.size, max_lag), np.nan)
-    npairs = np.zeros((st.ids.size, max_lag))
-    y[row, col] = ta["msd_um2"].to_numpy() / n_dims
-    npairs[row, col] = ta["n_pairs"].to_numpy()
-    return y, npairs
-
-
-def _alpha_lag_count(n_steps):
-    return np.clip(np.asarray(n_steps) // 3, 3, ALPHA_MAX_LAG)
-
-
-def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
-    """Ensemble fit of (K, alpha, s) with a bootstrap over tracks. Returns dict of results."""
-    cols = lags - 1
-    W = npairs[:, cols]
-    Y = np.where(W > 0, y[:, cols], 0.0)
-    keep = W.sum(1) > 0
-    W, Y = W[keep], Y[keep]
-    T = W.shape[0]
-    sw = W.sum(0)
-    if T == 0 or np.any(sw == 0):
-        return None
-    ens = (W * Y).sum(0) / sw
-    infl = W * (Y - ens) / sw  # influence of each track on the ensemble MSD
-    C = infl.T @ infl * (T / max(T - 1, 1))
-    d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
-    corr = C / np.outer(d, d)
-    corr = 0.8 * corr + 0.2 * np.eye(corr.shape[0])  # shrink toward independence: C is estimated from tracks
-    Cinv = np.linalg.pinv(corr) / np.outer(d, d)
-    t = lags * dt
-    theta, cov, ok = an.gls_power_law(ens[None, :], t, Cinv, exposure_s=exposure_s, s=None)
-    out = {"theta": theta[0], "cov": cov[0], "ok": bool(ok[0]), "ens": ens, "n_tracks": T}
-    if T >= 2 and n_boot > 0:
-        g = np.random.default_rng(rng)
-        reps = []
-        for s0 in range(0, n_boot, 200):
-            nb = min(200, n_boot - s0)
-            cnt = _boot_counts(g, T, nb)
-            ens_b = (cnt @ (W * Y)) / np.maximum(cnt @ W, 1e-300)
-            th_b, _, _ = an.gls_power_law(ens_b, t, Cinv, exposure_s=exposure_s, s=None,
-                                           theta0=np.repeat(theta, nb, axis=0))
-            reps.append(th_b)
-        out["boot"] = np.concatenate(reps)
-    return out
-
-
-def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
-    """Per-track fit of (K, alpha) with the localisation variance fixed at s_shared.
-
-    Generalised least squares weighted first by the TA-MSD covariance of Brownian motion with the track's
-    mean slope, then (twice) by the covariance of the fitted power law itself (fractional Brownian motion
-    with blur and noise, :func:`msdkit.estimators.anomalous.power_law_msd_covariance`), which also gives
-    alpha's standard error.
-    """
-    n_tr = st.ids.size
-    alpha = np.full(n_tr, np.nan)
-    se = np.full(n_tr, np.nan)
-    K = np.full(n_tr, np.nan)
-    n_a = _alpha_lag_count(st.n_steps)
-    usable = (st.n_steps >= 4) & np.isfinite(s_shared)
-    blur = exposure_s / dt
-    for na in np.unique(n_a[usable]):
-        lags = an.log_lags(int(na), ALPHA_N_LAGS)
-        idx = np.flatnonzero(usable & (n_a == na))
-        Y = y[idx][:, lags - 1]
-        good = np.all(np.isfinite(Y), axis=1)
-        idx, Y = idx[good], Y[good]
-        if idx.size == 0:
-            continue
-        ns = np.maximum(st.n_steps[idx], int(lags[-1]))
-        s_arr = np.full(idx.size, s_shared)
-        b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
-        C = np.empty((idx.size, lags.size, lags.size))
-        for N in np.unique(ns):
-            sel = ns == N
-            C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], s_shared - R * b_t[sel], n_dims)
-        theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr,
-                                        n_iter=20)
-        for _pass in range(3):
-            th_a = np.clip(theta[:, 1], *an.ALPHA_BOUNDS)
-            K_frame = np.exp(theta[:, 0]) * dt**th_a
-            for N in np.unique(ns):
-                sel = ns == N
-                C[sel] = an.power_law_msd_covariance(int(N), lags, K_frame[sel], th_a[sel], s_shared,
-                                                     blur=blur, n_dims=n_dims)
-            Cinv = _stable_inverse(C)
-            if _pass < 2:
-                theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
-                                                theta0=theta, n_iter=20)
-        _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
-        H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            var_alpha = H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
-        alpha[idx] = np.where(ok, theta[:, 1], np.nan)
-        se[idx] = np.where(ok & (var_alpha > 0), np.sqrt(np.abs(var_alpha)), np.nan)
-        K[idx] = np.where(ok, np.exp(theta[:, 0]), np.nan)
-    return alpha, se, K
-
-
-def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims):
-    """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted)."""
-    y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
-    if sigma_um is None:
-        n_max = int(np.clip(np.median(st.n_steps[usable]) // 3 if usable.any() else 3, 3, ALPHA_MAX_LAG))
-        res = _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e, n_dims=n_dims, rng=0,
-                                n_boot=0, lags=an.log_lags(n_max, ALPHA_N_LAGS))
-        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
-    else:
-        s_shared = float(sigma_um) ** 2
-    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
-    a_lo, a_hi = an.alpha_interval(alpha, a_se)
-    return alpha, a_lo, a_hi, K
-
-
-def _stable_inverse(C):
-    """Inverse of a stack of covariance matrices, regularised by a relative 1e-10 ridge."""
-    ridge = 1e-10 * np.trace(C, axis1=1, axis2=2) / C.shape[1]
-    C = C + ridge[:, None, None] * np.eye(C.shape[1])[None]
-    return np.linalg.inv(C)
-
-
-# ----------------------------------------------------------------------------------------------------------
 # public API
 # ----------------------------------------------------------------------------------------------------------
 
@@ -532,12 +409,6 @@ class SampleFit:
     alpha_lags_frames: tuple[int, ...] = ()
     n_boot: int = 0
     fit_status: str = "ok"
-
-
-def _boot_counts(g, T, nb):
-    """(nb, T) counts of each track in nb resamples of T tracks with replacement."""
-    draws = g.integers(0, T, (nb, T)) + (np.arange(nb) * T)[:, None]
-    return np.bincount(draws.ravel(), minlength=nb * T).reshape(nb, T).astype(float)
 
 
 def fit_sample(

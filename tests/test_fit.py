@@ -88,6 +88,10 @@ def test_covariance_estimator_variance_formula_holds_by_monte_carlo():
                    method="covariance", fit_alpha=False)
     eps, Ns = x - 2 * R, N - 1
     predicted = ((6 + 4 * eps + 2 * eps**2) / Ns + 4 * (1 + eps) ** 2 / Ns**2) / 2
+    # the same formula in (b, a) form, as the library holds it: b = 2 D dt, a = sigma^2 - R b
+    kbb, kab, kaa = dif.covariance_variance_coefficients(Ns, n_dims=2)
+    b, a = 2 * DT, x * DT - R * 2 * DT
+    assert (kbb * b * b + 2 * kab * a * b + kaa * a * a) / b**2 == pytest.approx(predicted, rel=1e-12)
     got = f["D_um2_s"].var(ddof=1)
     # SE of a sample variance: sqrt((kurtosis - 1) / M) relative; these sums have kurtosis < 4
     assert got == pytest.approx(predicted, rel=4 * np.sqrt(3 / M))
