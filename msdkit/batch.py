@@ -512,8 +512,13 @@ def run_batch(
     ex_cfg = cfg.executor
 
     with log_to_file(log_path), console_logging(mode):
+        # A run killed while writing leaves hidden temporary files; no writer of this batch is running yet.
         remove_stale_temp_files(out)
+        for name in names:
+            remove_stale_temp_files(out / name, recursive=True)
         log.info("msdkit %s: %d input(s) -> %s", __version__, len(paths), out)
+        if ex_cfg.kind != "dask" and ex_cfg.address:
+            log.info("executor.address is not used with executor.kind %r", ex_cfg.kind)
 
         # Resume: keep inputs whose completion record matches settings, input checksum and output files.
         rows: dict[int, StackRow] = {}
