@@ -23,6 +23,8 @@ import logging
 import os
 import pickle
 import queue as queue_mod
+import signal
+import sys
 import time
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
@@ -75,9 +77,25 @@ class SerialExecutor:
 
 
 # ------------------------------------------------------------------------------------- local processes
-def _init_worker(q) -> None:
+def _die_with_parent(parent_pid: int) -> None:
+    """Have Linux kill this worker when the batch process dies (even by SIGKILL): no orphan keeps writing."""
+    if not sys.platform.startswith("linux"):
+        return
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, int(signal.SIGKILL))  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        return
+    if os.getppid() != parent_pid:  # the parent died before prctl took effect
+        os._exit(1)
+
+
+def _init_worker(q, parent_pid: int) -> None:
     global _WORKER_QUEUE
     _WORKER_QUEUE = q
+    _die_with_parent(parent_pid)
 
 
 def _queue_report() -> Report | None:
@@ -143,7 +161,7 @@ class ProcessExecutor:
 
     def _pool(self, n: int) -> ProcessPoolExecutor:
         return ProcessPoolExecutor(max_workers=n, mp_context=self._ctx, initializer=_init_worker,
-                                   initargs=(self._queue,))
+                                   initargs=(self._queue, os.getpid()))
 
     def _drain(self, on_frames: FramesCallback | None) -> None:
         while True:

@@ -76,6 +76,9 @@ def fake_process(input_path, cfg, stack_dir, *, stack_name, progress=None):
 
 def slow_fake_process(input_path, cfg, stack_dir, *, stack_name, progress=None):
     """Like :func:`fake_process` but takes MSDKIT_TEST_DELAY_S seconds longer (for crash tests)."""
+    pid_dir = os.environ.get("MSDKIT_TEST_PID_DIR")
+    if pid_dir:
+        Path(pid_dir, str(os.getpid())).touch()
     time.sleep(float(os.environ.get("MSDKIT_TEST_DELAY_S", "0.3")))
     return fake_process(input_path, cfg, stack_dir, stack_name=stack_name, progress=progress)
 

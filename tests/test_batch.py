@@ -187,8 +187,9 @@ _BATCH_SCRIPT = textwrap.dedent(
     from msdkit.config import config_from_dict
     import batch_fakes
 
-    base = sys.argv[1]
-    cfg = config_from_dict({"inputs": ["in/*.tif"], "output_dir": "out", "executor": {"kind": "serial"},
+    base, kind = sys.argv[1], sys.argv[2]
+    cfg = config_from_dict({"inputs": ["in/*.tif"], "output_dir": "out",
+                            "executor": {"kind": kind, "n_workers": 2},
                             "acquisition": {"pixel_size_um": 0.1, "frame_interval_s": 0.05},
                             "analysis": {"seed": 0}}, base_dir=base)
     run_batch(cfg, process=batch_fakes.slow_fake_process, progress="log")
@@ -196,16 +197,27 @@ _BATCH_SCRIPT = textwrap.dedent(
 )
 
 
-def test_batch_killed_with_sigkill_and_rerun_ends_complete(tmp_path, monkeypatch):
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().split(")")[-1].split()[0]
+    except OSError:
+        return False
+    return state not in ("Z", "X")  # a zombie has ended and only waits to be reaped
+
+
+@pytest.mark.parametrize("kind", ["serial", pytest.param("local", marks=pytest.mark.slow)])
+def test_batch_killed_with_sigkill_and_rerun_ends_complete(tmp_path, monkeypatch, kind):
     rng = np.random.default_rng(3)
     (tmp_path / "in").mkdir()
     names = [f"m{i:02d}" for i in range(8)]
     for name in names:
         tifffile.imwrite(tmp_path / "in" / f"{name}.tif", _movie(rng))
+    pid_dir = tmp_path / "pids"
+    pid_dir.mkdir()
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(REPO), str(TESTS_DIR)]),
-           "MSDKIT_TEST_DELAY_S": "0.4"}
+           "MSDKIT_TEST_DELAY_S": "0.4", "MSDKIT_TEST_PID_DIR": str(pid_dir)}
     summary = tmp_path / "out" / SUMMARY_FILE
-    proc = subprocess.Popen([sys.executable, "-c", _BATCH_SCRIPT, str(tmp_path)], env=env,
+    proc = subprocess.Popen([sys.executable, "-c", _BATCH_SCRIPT, str(tmp_path), kind], env=env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
         deadline = time.monotonic() + 60
@@ -220,6 +232,13 @@ def test_batch_killed_with_sigkill_and_rerun_ends_complete(tmp_path, monkeypatch
         proc.send_signal(signal.SIGKILL)
         proc.wait()
     assert 3 <= n_done < len(names), "the batch should be killed mid-way"
+    if kind == "local":  # the worker processes die with the batch instead of writing on as orphans
+        workers = [int(p.name) for p in pid_dir.iterdir()]
+        assert workers and proc.pid not in workers
+        deadline = time.monotonic() + 10
+        while any(_alive(pid) for pid in workers) and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert not any(_alive(pid) for pid in workers)
     killed = pd.read_csv(summary)  # complete CSV, never half-written
     done_before = set(killed["stack"])
 
