@@ -41,19 +41,18 @@ import numpy as np
 import pandas as pd
 
 from .errors import FitError, expected_got
-from .estimators import anomalous as an
 from .estimators import diffusion as dif
 from .estimators.alpha_fits import (
-    ALPHA_MAX_LAG,
-    ALPHA_N_LAGS,
     _alpha_columns,
     _boot_counts,
+    _ensemble_lags,
     _msd_matrix,
     _sample_power_law,
 )
 from .estimators.increments import Steps, collect_steps, sine_modes
 
-__all__ = ["fit_tracks", "fit_sample", "SampleFit", "cramer_rao_relative_sd", "METHODS", "AUTO_X_SWITCH"]
+__all__ = ["fit_tracks", "fit_sample", "SampleFit", "cramer_rao_relative_sd", "METHODS", "AUTO_X_SWITCH",
+           "TRACK_FIT_COLUMNS"]
 
 METHODS = ("auto", "covariance", "likelihood", "one_step_likelihood", "msd_fit")
 #: Pooled reduced error above which ``auto`` uses maximum likelihood instead of the covariance estimator.
@@ -67,6 +66,8 @@ TRACK_FIT_COLUMNS = (
     "track", "n_points", "D_um2_s", "D_ci95_lo_um2_s", "D_ci95_hi_um2_s", "sigma_um", "sigma2_um2",
     "x_reduced", "alpha", "alpha_ci95_lo", "alpha_ci95_hi", "K_um2_s_alpha", "method", "fit_status",
 )
+_TRACK_FIT_DTYPES = {c: ("int64" if c in ("track", "n_points") else "object" if c in ("method", "fit_status")
+                         else "float64") for c in TRACK_FIT_COLUMNS}
 
 
 def _check_common(frame_interval_s, exposure_s, n_dims, method):
@@ -322,6 +323,8 @@ def fit_tracks(
     R = dif.blur_coefficient(dt, t_e)
     st = collect_steps(tracks, n_dims)
     n_tr = st.ids.size
+    if n_tr == 0:
+        return pd.DataFrame({c: pd.Series(dtype=t) for c, t in _TRACK_FIT_DTYPES.items()})
     chosen, _ = _resolve_method(method, st, R)
     usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
     status = np.where(usable, "ok", "too_short").astype(object)
@@ -539,11 +542,12 @@ def fit_sample(
     to_D = 1.0 / (2.0 * dt)
 
     # anomalous exponent from the ensemble MSD
-    n_max = int(np.clip(np.median(st.n_steps[idx]) // 3, 3, ALPHA_MAX_LAG))
-    lags = an.log_lags(n_max, ALPHA_N_LAGS)
-    y_a, np_a = _msd_matrix(tracks, st, int(lags[-1]), d)
-    pl = _sample_power_law(y_a[idx], np_a[idx], dt=dt, exposure_s=t_e, n_dims=d, rng=g, n_boot=n_boot,
-                           lags=lags)
+    lags = _ensemble_lags(st.n_steps[idx])
+    pl = None
+    if lags is not None:
+        y_a, np_a = _msd_matrix(tracks, st, int(lags[-1]), d)
+        pl = _sample_power_law(y_a[idx], np_a[idx], dt=dt, exposure_s=t_e, n_dims=d, rng=g, n_boot=n_boot,
+                               lags=lags)
     if pl is not None and pl["ok"]:
         alpha = float(pl["theta"][1])
         K = float(np.exp(pl["theta"][0]))
@@ -572,7 +576,7 @@ def fit_sample(
         alpha_se=a_se,
         K_um2_s_alpha=K,
         alpha_sigma_um=float(np.sqrt(max(s_alpha, 0.0))) if np.isfinite(s_alpha) else np.nan,
-        alpha_lags_frames=tuple(int(v) for v in lags),
+        alpha_lags_frames=() if lags is None else tuple(int(v) for v in lags),
         n_boot=int(n_boot if T >= 2 else 0),
         fit_status=status,
     )

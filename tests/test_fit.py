@@ -241,3 +241,16 @@ def test_sample_without_usable_steps_raises_fit_error():
                       "y_um": [0.0, 0, 0, 0]})
     with pytest.raises(FitError, match="two steps between consecutive frames"):
         fit_sample(t, frame_interval_s=DT, exposure_s=0.0)
+
+
+def test_empty_table_gives_empty_fits_with_all_columns():
+    t = brownian_tracks(2, 10, x=0.1).iloc[:0]
+    f = fit_tracks(t, frame_interval_s=DT, exposure_s=0.0)
+    assert len(f) == 0 and "D_ci95_hi_um2_s" in f.columns and "alpha" in f.columns
+
+
+def test_sample_alpha_is_not_fitted_from_too_few_lags():
+    # 4-point tracks span 3 lags: too few for K, alpha and the localisation offset
+    s = fit_sample(brownian_tracks(30, 4, x=0.1, seed=13), frame_interval_s=DT, exposure_s=0.0, n_boot=50)
+    assert np.isnan(s.alpha) and s.fit_status == "alpha_not_fitted"
+    assert np.isfinite(s.D_um2_s) and s.D_ci95_um2_s[0] < s.D_ci95_um2_s[1]

@@ -46,12 +46,15 @@ def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
     if T == 0 or np.any(sw == 0):
         return None
     ens = (W * Y).sum(0) / sw
-    infl = W * (Y - ens) / sw  # influence of each track on the ensemble MSD
-    C = infl.T @ infl * (T / max(T - 1, 1))
-    d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
-    corr = C / np.outer(d, d)
-    corr = 0.8 * corr + 0.2 * np.eye(corr.shape[0])  # shrink toward independence: C is estimated from tracks
-    Cinv = np.linalg.pinv(corr) / np.outer(d, d)
+    if T >= 3 * lags.size:
+        infl = W * (Y - ens) / sw  # influence of each track on the ensemble MSD
+        C = infl.T @ infl * (T / (T - 1))
+        d = np.sqrt(np.maximum(np.diag(C), np.finfo(float).tiny))
+        corr = C / np.outer(d, d)
+        corr = 0.8 * corr + 0.2 * np.eye(corr.shape[0])  # shrink toward independence: C is estimated
+        Cinv = np.linalg.pinv(corr) / np.outer(d, d)
+    else:  # too few tracks to estimate the covariance: relative least squares
+        Cinv = np.diag(1.0 / ens**2)
     t = lags * dt
     theta, cov, ok = an.gls_power_law(ens[None, :], t, Cinv, exposure_s=exposure_s, s=None)
     out = {"theta": theta[0], "cov": cov[0], "ok": bool(ok[0]), "ens": ens, "n_tracks": T}
@@ -122,13 +125,24 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
     return alpha, se, K
 
 
+def _ensemble_lags(n_steps):
+    """Lags for the ensemble power-law fit: log-spaced up to a third of the median track (4 to 50 frames).
+
+    None when the tracks span fewer than 4 lags, too few to fit K, alpha and the localisation offset.
+    """
+    if n_steps.size == 0:
+        return None
+    n_max = int(min(np.clip(np.median(n_steps) // 3, 4, ALPHA_MAX_LAG), n_steps.max()))
+    return an.log_lags(n_max, ALPHA_N_LAGS) if n_max >= 4 else None
+
+
 def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims):
     """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted)."""
     y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
     if sigma_um is None:
-        n_max = int(np.clip(np.median(st.n_steps[usable]) // 3 if usable.any() else 3, 3, ALPHA_MAX_LAG))
-        res = _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e, n_dims=n_dims, rng=0,
-                                n_boot=0, lags=an.log_lags(n_max, ALPHA_N_LAGS))
+        lags = _ensemble_lags(st.n_steps[usable])
+        res = None if lags is None else _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e,
+                                                          n_dims=n_dims, rng=0, n_boot=0, lags=lags)
         s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
     else:
         s_shared = float(sigma_um) ** 2
