@@ -215,6 +215,12 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     the sample's noise ratio). kind = "covariance": the covariance-based estimator, which is the same kind of
     sum because its step moments are diagonal in the sine basis: sum_k dx_k^2 = sum_k P_k^2 and
     sum_k dx_k dx_(k+1) = sum_k cos(pi k/(m+1)) P_k^2 within a segment of m steps.
+
+    The intervals need the localisation variance s. Each track's own estimate is noisy at small N, the
+    pooled one is wrong for tracks whose localisation error differs (brightness); the interval uses an
+    empirical-Bayes blend, s_t = s_pool + w_t (s_hat_t - s_pool) with w_t = tau^2 / (tau^2 + v_t), where v_t
+    is the sampling variance of s_hat_t and tau^2 the between-track variance of s left after subtracting it
+    (method of moments). A sample with one localisation error gets tau^2 ~ 0 and the pooled value.
     """
     modes = sine_modes(st)
     lam, power, _ = modes
@@ -226,27 +232,41 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
         b0, a0 = dif.covariance_estimate(st.sum_sq[usable].sum(), st.n_steps[usable].sum(),
                                          st.sum_cross[usable].sum(), st.n_pairs[usable].sum(),
                                          n_dims=n_dims, R=R)
-    # intervals take the sample's pooled localisation variance (precise) rather than each track's own
-    # (noisy at small N, which would make the intervals too wide or too narrow)
     s_pool = max(float(a0 + R * b0), 0.0) if np.isfinite(a0 + R * b0) else 0.0
     n_tr = st.ids.size
-    out = {k: np.full(n_tr, np.nan) for k in ("b", "a", "lo", "hi")}
+    out = {k: np.full(n_tr, np.nan) for k in ("b", "a", "lo", "hi", "v")}
+    m2_all = np.zeros((n_tr, 3))
+    m3_all = np.zeros((n_tr, 4))
     first = np.concatenate([[0], np.cumsum(st.n_steps)[:-1]])
     idx_all = np.flatnonzero(usable)
     for grp, K in _padded_groups(st.n_steps[idx_all]):
         idx = idx_all[grp]
         w, (L, S) = _fill_padded(idx, K, first, st.n_steps, lam, power)
         if kind == "one_step":
-            b, a, _, _, _, c = dif.gls_fixed_ratio(L, S, w, rho, n_dims=n_dims)
+            b, a, _, _, _, c, ca = dif.gls_fixed_ratio(L, S, w, rho, n_dims=n_dims)
         else:
             n1 = st.n_steps[idx][:, None].astype(float)
             n2 = st.n_pairs[idx][:, None].astype(float)
             c = w * (1.0 / n1 + (2.0 - L) / n2)
+            ca = -w * (1.0 - L / 2.0) / n2
             b = (c * S).sum(1) / n_dims
-            a = -((w * (1.0 - L / 2.0) * S).sum(1) / (n_dims * n2[:, 0]))
-        m2, m3 = dif.weighted_chi2_moments(c, L, w, R=R)
-        lo, hi = dif.skewed_interval(b, s_pool, m2, m3, n_dims=n_dims)
-        out["b"][idx], out["a"][idx], out["lo"][idx], out["hi"][idx] = b, a, lo, hi
+            a = (ca * S).sum(1) / n_dims
+        m2_all[idx], m3_all[idx] = dif.weighted_chi2_moments(c, L, w, R=R)
+        # sampling variance of s_hat = sum (ca + R c) S / d at (max(b, 0), s_pool)
+        psi = np.maximum(b, 0.0)[:, None] * (1.0 - R * L) + s_pool * L
+        cs = (ca + R * c) * (w > 0)
+        out["v"][idx] = (2.0 / n_dims) * np.einsum("ij,ij->i", cs * psi, cs * psi)
+        out["b"][idx], out["a"][idx] = b, a
+    i = idx_all
+    s_hat = out["a"][i] + R * out["b"][i]
+    v = out["v"][i]
+    tau2 = max(float(np.mean((s_hat - s_pool) ** 2) - np.mean(v)), 0.0) if i.size > 1 else 0.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        wt = np.where(tau2 > 0, tau2 / (tau2 + v), 0.0)
+    s_used = np.maximum(s_pool + wt * (s_hat - s_pool), 0.0)
+    if i.size:
+        out["lo"][i], out["hi"][i] = dif.skewed_interval(out["b"][i], s_used, m2_all[i], m3_all[i],
+                                                         n_dims=n_dims)
     return out["b"], out["a"], out["lo"], out["hi"]
 
 
@@ -295,11 +315,11 @@ def fit_tracks(
     -----
     D intervals are 95 % intervals that invert the estimator's known distribution at each hypothesised D:
     for the covariance and one-step estimators, which are fixed-weight sums of independent chi-square
-    modes, the exact first three cumulants give a skewness-aware (shifted gamma) quantile, with the sample's
-    pooled localisation variance; for the MSD fit and the full likelihood a score-type interval from the
-    exact MSD covariance or the Fisher information. The upper end is +inf when a track is too short and
-    noisy to bound D. Intervals assume the track shares the sample's localisation error; in samples where
-    it varies strongly between tracks, single-track coverage departs from 95 %.
+    modes, the exact first three cumulants give a skewness-aware (shifted gamma) quantile, with the
+    localisation variance blended between the track's own and the sample's pooled value (empirical Bayes,
+    so samples whose tracks differ in brightness keep their coverage); for the MSD fit and the full
+    likelihood a score-type interval from the exact MSD covariance or the Fisher information. The upper
+    end is +inf when a track is too short and noisy to bound D.
 
     The anomalous exponent is fitted to the TA-MSD at up to ten log-spaced lags (1 to N/3, at most 50) with
     the model 2d [K g_alpha(t) + sigma^2] including blur

@@ -254,3 +254,16 @@ def test_sample_alpha_is_not_fitted_from_too_few_lags():
     s = fit_sample(brownian_tracks(30, 4, x=0.1, seed=13), frame_interval_s=DT, exposure_s=0.0, n_boot=50)
     assert np.isnan(s.alpha) and s.fit_status == "alpha_not_fitted"
     assert np.isfinite(s.D_um2_s) and s.D_ci95_um2_s[0] < s.D_ci95_um2_s[1]
+
+
+def test_intervals_keep_their_coverage_when_tracks_differ_in_localisation_error():
+    # half the tracks bright (x = 0.04), half dim (x = 4): a pooled sigma alone would miscover both halves
+    M, N = 1500, 60
+    pos = np.concatenate([
+        brownian_positions(M, N, D_um2_s=1.0, frame_interval_s=DT, exposure_s=DT, localization_sd_um=s,
+                           rng=np.random.default_rng(20 + k)) for k, s in enumerate((0.02, 0.2))])
+    f = fit_tracks(positions_to_tracks(pos, frame_interval_s=DT), frame_interval_s=DT, exposure_s=DT,
+                   fit_alpha=False)
+    cover = ((f["D_ci95_lo_um2_s"] <= 1.0) & (f["D_ci95_hi_um2_s"] >= 1.0)).to_numpy()
+    tol = 4 * np.sqrt(0.95 * 0.05 / M)
+    assert abs(cover[:M].mean() - 0.95) < tol and abs(cover[M:].mean() - 0.95) < tol

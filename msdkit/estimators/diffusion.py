@@ -322,8 +322,8 @@ def gls_fixed_ratio(lam, S, w, rho, *, n_dims: int):
     b, a : arrays
     kbb, kab, kaa : arrays
         Exact variance coefficients, Var(b_hat) = kbb b^2 + 2 kab a b + kaa a^2 at the true (b, a).
-    c : (n_rows, n_modes) array
-        The weights, b_hat = sum_k c_k S_k / d.
+    c, ca : (n_rows, n_modes) arrays
+        The weights, b_hat = sum_k c_k S_k / d and a_hat = sum_k ca_k S_k / d.
 
     Notes
     -----
@@ -343,9 +343,10 @@ def gls_fixed_ratio(lam, S, w, rho, *, n_dims: int):
         b = (s2 * t0 - s1 * t1) / det
         a = (s0 * t1 - s1 * t0) / det
         c = r * (s2[:, None] - s1[:, None] * lam) / det[:, None]
+        ca = r * (s0[:, None] * lam - s1[:, None]) / det[:, None]
     c2 = c * c * (w > 0)
     f = 2.0 / n_dims
-    return b, a, f * c2.sum(1), f * (c2 * lam).sum(1), f * (c2 * lam * lam).sum(1), c
+    return b, a, f * c2.sum(1), f * (c2 * lam).sum(1), f * (c2 * lam * lam).sum(1), c, ca
 
 
 def weighted_chi2_moments(c, lam, w, *, R: float):
