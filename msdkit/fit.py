@@ -44,6 +44,7 @@ from .errors import FitError, expected_got
 from .estimators import diffusion as dif
 from .estimators.alpha_fits import (
     _alpha_columns,
+    _boot_chunk,
     _boot_counts,
     _ensemble_lags,
     _msd_matrix,
@@ -551,8 +552,9 @@ def fit_sample(
 
     boots = []
     if T >= 2 and n_boot > 0:
-        for s0 in range(0, n_boot, 200):
-            boots.append(boot_b(_boot_counts(g, T, min(200, n_boot - s0))))
+        chunk = _boot_chunk(T)
+        for s0 in range(0, n_boot, chunk):
+            boots.append(boot_b(_boot_counts(g, T, min(chunk, n_boot - s0))))
         bs = np.concatenate(boots)
         lo, hi = np.nanpercentile(bs, [2.5, 97.5])
         se = float(np.nanstd(bs, ddof=1))

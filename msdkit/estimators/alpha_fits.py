@@ -61,8 +61,9 @@ def _sample_power_law(y, npairs, *, dt, exposure_s, n_dims, rng, n_boot, lags):
     if T >= 2 and n_boot > 0:
         g = np.random.default_rng(rng)
         reps = []
-        for s0 in range(0, n_boot, 200):
-            nb = min(200, n_boot - s0)
+        per = _boot_chunk(T)
+        for s0 in range(0, n_boot, per):
+            nb = min(per, n_boot - s0)
             cnt = _boot_counts(g, T, nb)
             ens_b = (cnt @ (W * Y)) / np.maximum(cnt @ W, 1e-300)
             th_b, _, _ = an.gls_power_law(ens_b, t, Cinv, exposure_s=exposure_s, s=None,
@@ -89,40 +90,47 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
     blur = exposure_s / dt
     for na in np.unique(n_a[usable]):
         lags = an.log_lags(int(na), ALPHA_N_LAGS)
-        idx = np.flatnonzero(usable & (n_a == na))
-        Y = y[idx][:, lags - 1]
-        good = np.all(np.isfinite(Y), axis=1)
-        idx, Y = idx[good], Y[good]
-        if idx.size == 0:
-            continue
-        ns = np.maximum(st.n_steps[idx], int(lags[-1]))
-        s_arr = np.full(idx.size, s_shared)
-        b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
-        C = np.empty((idx.size, lags.size, lags.size))
+        for idx in np.array_split(np.flatnonzero(usable & (n_a == na)),
+                                  max(1, int(np.sum(usable & (n_a == na))) // 20000 + 1)):
+            _fit_alpha_block(y, st, idx, lags, s_shared, alpha, se, K, dt=dt, exposure_s=exposure_s, R=R,
+                             n_dims=n_dims, blur=blur)
+    return alpha, se, K
+
+
+def _fit_alpha_block(y, st, idx, lags, s_shared, alpha, se, K, *, dt, exposure_s, R, n_dims, blur):
+    """Per-track alpha for one block of tracks sharing their lags (results written into alpha, se, K)."""
+    Y = y[idx][:, lags - 1]
+    good = np.all(np.isfinite(Y), axis=1)
+    idx, Y = idx[good], Y[good]
+    if idx.size == 0:
+        return
+    ns = np.maximum(st.n_steps[idx], int(lags[-1]))
+    s_arr = np.full(idx.size, s_shared)
+    b_t = np.maximum((Y[:, -1] - Y[:, 0]) / max(lags[-1] - lags[0], 1), 1e-12 * np.abs(Y).max(1) + 1e-300)
+    C = np.empty((idx.size, lags.size, lags.size))
+    for N in np.unique(ns):
+        sel = ns == N
+        C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], s_shared - R * b_t[sel], n_dims)
+    theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr,
+                                    n_iter=20)
+    for _pass in range(3):
+        th_a = np.clip(theta[:, 1], *an.ALPHA_BOUNDS)
+        K_frame = np.exp(theta[:, 0]) * dt**th_a
         for N in np.unique(ns):
             sel = ns == N
-            C[sel] = an.brownian_msd_covariance(int(N), lags, b_t[sel], s_shared - R * b_t[sel], n_dims)
-        theta, _, ok = an.gls_power_law(Y, lags * dt, _stable_inverse(C), exposure_s=exposure_s, s=s_arr,
-                                        n_iter=20)
-        for _pass in range(3):
-            th_a = np.clip(theta[:, 1], *an.ALPHA_BOUNDS)
-            K_frame = np.exp(theta[:, 0]) * dt**th_a
-            for N in np.unique(ns):
-                sel = ns == N
-                C[sel] = an.power_law_msd_covariance(int(N), lags, K_frame[sel], th_a[sel], s_shared,
-                                                     blur=blur, n_dims=n_dims)
-            Cinv = _stable_inverse(C)
-            if _pass < 2:
-                theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
-                                                theta0=theta, n_iter=20)
-        _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
-        H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            var_alpha = H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
-        alpha[idx] = np.where(ok, theta[:, 1], np.nan)
-        se[idx] = np.where(ok & (var_alpha > 0), np.sqrt(np.abs(var_alpha)), np.nan)
-        K[idx] = np.where(ok, np.exp(theta[:, 0]), np.nan)
-    return alpha, se, K
+            C[sel] = an.power_law_msd_covariance(int(N), lags, K_frame[sel], th_a[sel], s_shared,
+                                                 blur=blur, n_dims=n_dims)
+        Cinv = _stable_inverse(C)
+        if _pass < 2:
+            theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
+                                            theta0=theta, n_iter=20)
+    _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
+    H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var_alpha = H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
+    alpha[idx] = np.where(ok, theta[:, 1], np.nan)
+    se[idx] = np.where(ok & (var_alpha > 0), np.sqrt(np.abs(var_alpha)), np.nan)
+    K[idx] = np.where(ok, np.exp(theta[:, 0]), np.nan)
 
 
 def _ensemble_lags(n_steps):
@@ -138,9 +146,10 @@ def _ensemble_lags(n_steps):
 
 def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims):
     """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted)."""
-    y_a, np_a = _msd_matrix(tracks, st, ALPHA_MAX_LAG, n_dims)
+    lags = _ensemble_lags(st.n_steps[usable]) if sigma_um is None else None
+    need = _alpha_lag_count(st.n_steps[usable]).max(initial=1)
+    y_a, np_a = _msd_matrix(tracks, st, int(max(need, 1 if lags is None else lags[-1])), n_dims)
     if sigma_um is None:
-        lags = _ensemble_lags(st.n_steps[usable])
         res = None if lags is None else _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e,
                                                           n_dims=n_dims, rng=0, n_boot=0, lags=lags)
         s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
@@ -159,6 +168,11 @@ def _stable_inverse(C):
 
 
 # ----------------------------------------------------------------------------------------------------------
+
+
+def _boot_chunk(n_tracks: int) -> int:
+    """Bootstrap replicates per chunk, so that a chunk's (replicates x tracks) counts stay near 4 million."""
+    return int(np.clip((1 << 22) // max(n_tracks, 1), 1, 200))
 
 
 def _boot_counts(g, T, nb):
