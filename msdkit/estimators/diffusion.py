@@ -374,11 +374,12 @@ def weighted_chi2_moments(c, lam, w, *, R: float):
     return m2, m3
 
 
-def _gamma_quantile(mean, k2, k3, p):
+def _gamma_quantile(mean, k2, k3, p, exact_below: float = 20.0):
     """Quantile p of the shifted gamma law with the given mean, variance k2 and third cumulant k3.
 
-    The standardised gamma quantile uses the Wilson-Hilferty cube-root approximation for shape >= 20
-    (relative error below 1e-3 in the 2.5 % tails) and the exact inverse incomplete gamma function otherwise.
+    The standardised gamma quantile uses the Wilson-Hilferty cube-root approximation for shape >=
+    exact_below (relative error below 1e-3 in the 2.5 % tails at shape 20) and the exact inverse incomplete
+    gamma function otherwise.
     """
     sd = np.sqrt(np.maximum(k2, 1e-300))
     skew = k3 / sd**3
@@ -389,7 +390,7 @@ def _gamma_quantile(mean, k2, k3, p):
     sign = np.sign(sk)
     zz = np.where(sign > 0, z, -z)
     g = shape * (1.0 - 1.0 / (9.0 * shape) + zz / (3.0 * np.sqrt(shape))) ** 3
-    exact = shape < 20
+    exact = shape < exact_below
     if exact.any():
         pp = np.where(sign > 0, p, 1.0 - p)
         with np.errstate(over="ignore", invalid="ignore"):
@@ -411,26 +412,36 @@ def skewed_interval(b_hat, s, m2, m3, *, n_dims: int, z: float = Z95, n_iter: in
     s = np.broadcast_to(np.asarray(s, float), b_hat.shape)
     p_lo, p_hi = special.ndtr(-z), special.ndtr(z)
 
-    def quant(b, p):
+    def quant(b, p, exact_below=20.0):
         k2 = (2.0 / n_dims) * (m2[:, 0] * b * b + m2[:, 1] * b * s + m2[:, 2] * s * s)
         k3 = (8.0 / n_dims**2) * (m3[:, 0] * b**3 + m3[:, 1] * b * b * s + m3[:, 2] * b * s * s
                                   + m3[:, 3] * s**3)
-        return _gamma_quantile(b, k2, k3, p)
+        return _gamma_quantile(b, k2, k3, p, exact_below)
+
+    def bisect(lo_b, hi_b, p, n, exact_below):
+        for _ in range(n):
+            mid = 0.5 * (lo_b + hi_b)
+            up = quant(np.exp(mid), p, exact_below) - b_hat > 0
+            hi_b = np.where(up, mid, hi_b)
+            lo_b = np.where(up, lo_b, mid)
+        return lo_b, hi_b
 
     scale = np.maximum(np.abs(b_hat), np.sqrt(np.maximum(m2[:, 2] * s * s, 0.0))) + 1e-300
     out = []
     for p, side in ((p_hi, "lo"), (p_lo, "hi")):
-        # f(b) = quantile_p(b) - b_hat is increasing in b; find its root on a log scale in b
+        # f(b) = quantile_p(b) - b_hat is increasing in b; find its root on a log scale in b, first with the
+        # cheap Wilson-Hilferty quantile everywhere, then exactly within +-10 % of that root
         lo_b = np.log(scale * 1e-4)
         hi_b = np.log(scale * 1e4)
         f_lo = quant(np.exp(lo_b), p) - b_hat
         f_hi = quant(np.exp(hi_b), p) - b_hat
-        for _ in range(n_iter):
-            mid = 0.5 * (lo_b + hi_b)
-            fm = quant(np.exp(mid), p) - b_hat
-            up = fm > 0
-            hi_b = np.where(up, mid, hi_b)
-            lo_b = np.where(up, lo_b, mid)
+        lo_b, hi_b = bisect(lo_b, hi_b, p, n_iter, 0.0)
+        mid = 0.5 * (lo_b + hi_b)
+        lo_e, hi_e = mid - 0.1, mid + 0.1
+        ok = (quant(np.exp(lo_e), p) - b_hat <= 0) & (quant(np.exp(hi_e), p) - b_hat > 0)
+        lo_e = np.where(ok, lo_e, np.log(scale * 1e-4))
+        hi_e = np.where(ok, hi_e, np.log(scale * 1e4))
+        lo_b, hi_b = bisect(lo_e, hi_e, p, 14 + np.where(ok, 0, 12).max(initial=0), 20.0)
         root = np.exp(0.5 * (lo_b + hi_b))
         if side == "lo":
             out.append(np.where(f_lo >= 0, 0.0, np.where(f_hi < 0, np.inf, root)))
