@@ -118,8 +118,23 @@ def _blocks(need: np.ndarray, length: np.ndarray):
             yield grp[s:s + per], nfft
 
 
+class _Workspace:
+    """Scratch arrays reused from block to block (fresh memory for every block costs page faults)."""
+
+    def __init__(self):
+        self._buf: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
+        size = int(np.prod(shape))
+        buf = self._buf.get(name)
+        if buf is None or buf.size < size:
+            buf = self._buf[name] = np.empty(size)
+        return buf[:size].reshape(shape)
+
+
 def _contiguous_into(tr: _Tracks, idx: np.ndarray, nfft: int, n_lag: np.ndarray, offsets: np.ndarray,
-                     out_lag: np.ndarray, out_msd: np.ndarray, out_pairs: np.ndarray) -> None:
+                     out_lag: np.ndarray, out_msd: np.ndarray, out_pairs: np.ndarray,
+                     work: _Workspace) -> None:
     """TA-MSD of a block of tracks without gaps, written straight into the output arrays.
 
     S1 by running sums and S2 = sum_i r_i . r_{i+n} from the power spectrum (Calandrini et al. 2011). The
@@ -131,14 +146,13 @@ def _contiguous_into(tr: _Tracks, idx: np.ndarray, nfft: int, n_lag: np.ndarray,
     b = idx.size
     n_dims = len(tr.coords)
     half = nfft // 2
-    grid = np.empty((n_dims, b, nfft))
-    csum = np.empty((b, nfft + 1))
+    grid = work.get("grid", (n_dims, b, nfft))
+    csum = work.get("csum", (b, nfft + 1))
     c = tr.coords + [tr.coords[0]] * (3 - n_dims)
     k.fill_block(c[0], c[1], c[2], n_dims, tr.start[idx], tr.count[idx], grid, csum)
     spec = scipy.fft.rfft(grid, axis=2)
-    del grid
     j = np.arange(half // 2 + 1)
-    g = np.empty((b, half))
+    g = work.get("g", (b, half))
     f1 = np.empty(b)
     k.dct1_prepare(spec, n_dims, np.sin(np.pi * j / half), np.cos(np.pi * j / half), g, f1)
     del spec
@@ -265,8 +279,9 @@ def time_averaged_msd(
         out_pairs[dest] = pairs
 
     p_idx = np.flatnonzero(plain)
+    work = _Workspace()
     for blk, nfft in _blocks(tr.count[p_idx] + n_lag[p_idx], tr.count[p_idx]):
-        _contiguous_into(tr, p_idx[blk], nfft, n_lag, offsets, out_lag, out_msd, out_pairs)
+        _contiguous_into(tr, p_idx[blk], nfft, n_lag, offsets, out_lag, out_msd, out_pairs, work)
     return pd.DataFrame(
         {"track": out_track, "lag_frames": out_lag, "msd_um2": out_msd, "n_pairs": out_pairs}, copy=False
     )
