@@ -153,9 +153,12 @@ def analyze_tracks(
         tracks, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
         sigma_um=getattr(sample_fit, "sigma_um", None), track_fits=track_fits,
     )
-    extra_cols = [c for c in classes.columns if c != "track" and c not in track_fits.columns or c == "motion_class"]
-    track_fits = track_fits.drop(columns=[c for c in extra_cols if c in track_fits.columns and c != "track"])
-    track_fits = track_fits.merge(classes[["track", *[c for c in extra_cols if c != "track"]]], on="track", how="left")
+    # The estimators' per-track alpha (noise- and blur-aware, shared localisation error) stays the `alpha`
+    # column; the classifier's own model-comparison numbers are kept beside it with a `class_` prefix.
+    renamed = {c: (c if c in ("track", "motion_class") or c not in track_fits.columns else f"class_{c}")
+               for c in classes.columns}
+    track_fits = track_fits.drop(columns=[c for c in ("motion_class",) if c in track_fits.columns])
+    track_fits = track_fits.merge(classes.rename(columns=renamed), on="track", how="left")
     motion = classify.sample_motion(
         tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
         track_fits=track_fits,
