@@ -406,8 +406,12 @@ class SampleFit:
     Attributes
     ----------
     D_um2_s, D_ci95_um2_s, D_se_um2_s : pooled D, its interval (lo, hi) and bootstrap SD.
-    sigma_um, sigma2_um2 : localisation error from the D estimator (sigma2 may be negative).
-    x_reduced : sigma^2 / (D dt).
+    sigma_um : the sample's localisation error, from the ensemble power-law fit with blur, which holds for
+        normal and anomalous motion alike (the D estimator's value when alpha could not be fitted). Pass it
+        as ``fit_tracks(..., sigma_um=...)`` to reuse it for per-track alpha.
+    D_sigma_um, sigma2_um2 : localisation error from the estimator of D (Brownian step model; sigma2 may be
+        negative). For anomalous motion it absorbs the steps' own correlation and is not a localisation error.
+    x_reduced : sigma^2 / (D dt) of the estimator of D.
     alpha, alpha_ci95, alpha_se, K_um2_s_alpha, alpha_sigma_um : anomalous exponent from the ensemble MSD
         with the localisation and blur offset, its interval, SD, prefactor and the localisation error fitted
         with it.
@@ -427,6 +431,7 @@ class SampleFit:
     n_steps: int
     D_se_um2_s: float = np.nan
     sigma2_um2: float = np.nan
+    D_sigma_um: float = np.nan
     alpha_se: float = np.nan
     K_um2_s_alpha: float = np.nan
     alpha_sigma_um: float = np.nan
@@ -588,13 +593,14 @@ def fit_sample(
         D_ci95_um2_s=(float(lo * to_D), float(hi * to_D)),
         alpha=alpha,
         alpha_ci95=(float(a_lo), float(a_hi)),
-        sigma_um=float(np.sqrt(max(s, 0.0))),
+        sigma_um=float(np.sqrt(max(s_alpha, 0.0))) if np.isfinite(s_alpha) else float(np.sqrt(max(s, 0.0))),
         x_reduced=float(2.0 * s / b) if b != 0 else np.nan,
         method=chosen,
         n_tracks=int(T),
         n_steps=n_steps_total,
         D_se_um2_s=se * to_D,
         sigma2_um2=float(s),
+        D_sigma_um=float(np.sqrt(max(s, 0.0))),
         alpha_se=a_se,
         K_um2_s_alpha=K,
         alpha_sigma_um=float(np.sqrt(max(s_alpha, 0.0))) if np.isfinite(s_alpha) else np.nan,

@@ -267,3 +267,15 @@ def test_intervals_keep_their_coverage_when_tracks_differ_in_localisation_error(
     cover = ((f["D_ci95_lo_um2_s"] <= 1.0) & (f["D_ci95_hi_um2_s"] >= 1.0)).to_numpy()
     tol = 4 * np.sqrt(0.95 * 0.05 / M)
     assert abs(cover[:M].mean() - 0.95) < tol and abs(cover[M:].mean() - 0.95) < tol
+
+
+def test_sample_localisation_error_holds_for_subdiffusion_and_keeps_track_alpha_unbiased():
+    # fractional Brownian motion, alpha = 0.5: its anticorrelated steps inflate the Brownian-model sigma
+    pos = fbm_positions(300, 150, alpha=0.5, K_um2_s_alpha=0.3, frame_interval_s=0.02,
+                        localization_sd_um=0.05, rng=np.random.default_rng(14))
+    t = positions_to_tracks(pos, frame_interval_s=0.02)
+    s = fit_sample(t, frame_interval_s=0.02, exposure_s=0.0, n_boot=200)
+    assert s.D_sigma_um > 2 * 0.05  # the D estimator's sigma is not a localisation error here
+    assert abs(s.sigma_um - 0.05) < 0.03
+    f = fit_tracks(t, frame_interval_s=0.02, exposure_s=0.0, sigma_um=s.sigma_um)
+    assert abs(f["alpha"].median() - 0.5) < 0.06
