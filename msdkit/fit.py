@@ -154,28 +154,6 @@ def _fill_padded(idx, K, first, n_modes, *arrays):
     return w, out
 
 
-def _likelihood_tracks(st: Steps, usable: np.ndarray, *, n_dims: int, R: float):
-    """Per-track maximum likelihood (b, a) and score-type interval of b."""
-    lam, power, mode_track = sine_modes(st)
-    n_tr = st.ids.size
-    n_modes = st.n_steps
-    first = np.concatenate([[0], np.cumsum(n_modes)[:-1]])
-    b = np.full(n_tr, np.nan)
-    a = np.full(n_tr, np.nan)
-    lo = np.full(n_tr, np.nan)
-    hi = np.full(n_tr, np.nan)
-    conv = np.zeros(n_tr, bool)
-    idx_all = np.flatnonzero(usable)
-    for grp, K in _padded_groups(n_modes[idx_all]):
-        idx = idx_all[grp]
-        w, (L, S) = _fill_padded(idx, K, first, n_modes, lam, power)
-        bb, aa, _, cv = dif.ml_fit(L, S, w, n_dims=n_dims)
-        s_hat = aa + R * bb
-        l_, h_ = dif.ml_interval(bb, s_hat, L, w, n_dims=n_dims, R=R)
-        b[idx], a[idx], lo[idx], hi[idx], conv[idx] = bb, aa, l_, h_, cv
-    return b, a, lo, hi, conv
-
-
 def _pooled_modes(modes, usable: np.ndarray):
     """Sine modes of the usable tracks: lam, power and the index (0..n_usable-1) of their track."""
     lam, power, mode_track = modes
@@ -215,7 +193,9 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     kind = "one_step": weights of one likelihood-scoring step from the pooled fit (weighted least squares at
     the sample's noise ratio). kind = "covariance": the covariance-based estimator, which is the same kind of
     sum because its step moments are diagonal in the sine basis: sum_k dx_k^2 = sum_k P_k^2 and
-    sum_k dx_k dx_(k+1) = sum_k cos(pi k/(m+1)) P_k^2 within a segment of m steps.
+    sum_k dx_k dx_(k+1) = sum_k cos(pi k/(m+1)) P_k^2 within a segment of m steps. kind = "likelihood": each
+    track's own maximum likelihood, which is the weighted least-squares fit at its own fitted noise ratio
+    (the fixed point of the scoring iteration); its interval treats those weights as fixed.
 
     The intervals need the localisation variance s. Each track's own estimate is noisy at small N, the
     pooled one is wrong for tracks whose localisation error differs (brightness); the interval uses an
@@ -226,7 +206,7 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     modes = sine_modes(st)
     lam, power, _ = modes
     rho = 0.0
-    if kind == "one_step":
+    if kind in ("one_step", "likelihood"):
         b0, a0 = _pooled_ml(st, modes, usable, n_dims)
         rho = a0 / b0 if b0 > 0 else 0.0
     else:
@@ -236,6 +216,7 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     s_pool = max(float(a0 + R * b0), 0.0) if np.isfinite(a0 + R * b0) else 0.0
     n_tr = st.ids.size
     out = {k: np.full(n_tr, np.nan) for k in ("b", "a", "lo", "hi", "v")}
+    conv = np.ones(n_tr, bool)
     m2_all = np.zeros((n_tr, 3))
     m3_all = np.zeros((n_tr, 4))
     first = np.concatenate([[0], np.cumsum(st.n_steps)[:-1]])
@@ -245,6 +226,10 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
         w, (L, S) = _fill_padded(idx, K, first, st.n_steps, lam, power)
         if kind == "one_step":
             b, a, _, _, _, c, ca = dif.gls_fixed_ratio(L, S, w, rho, n_dims=n_dims)
+        elif kind == "likelihood":
+            b, a, _, conv[idx] = dif.ml_fit(L, S, w, n_dims=n_dims)
+            rho_t = np.where(b > 0, a / np.where(b > 0, b, 1.0), rho)[:, None]
+            _, _, _, _, _, c, ca = dif.gls_fixed_ratio(L, S, w, rho_t, n_dims=n_dims)
         else:
             n1 = st.n_steps[idx][:, None].astype(float)
             n2 = st.n_pairs[idx][:, None].astype(float)
@@ -268,7 +253,7 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     if i.size:
         out["lo"][i], out["hi"][i] = dif.skewed_interval(out["b"][i], s_used, m2_all[i], m3_all[i],
                                                          n_dims=n_dims)
-    return out["b"], out["a"], out["lo"], out["hi"]
+    return out["b"], out["a"], out["lo"], out["hi"], conv
 
 
 # public API
@@ -350,11 +335,9 @@ def fit_tracks(
     usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
     status = np.where(usable, "ok", "too_short").astype(object)
 
-    if chosen in ("covariance", "one_step_likelihood"):
-        kind = "covariance" if chosen == "covariance" else "one_step"
-        b, a, lo, hi = _weighted_mode_tracks(st, usable, kind, n_dims=n_dims, R=R)
-    elif chosen == "likelihood":
-        b, a, lo, hi, conv = _likelihood_tracks(st, usable, n_dims=n_dims, R=R)
+    if chosen in ("covariance", "one_step_likelihood", "likelihood"):
+        kind = {"covariance": "covariance", "one_step_likelihood": "one_step"}.get(chosen, "likelihood")
+        b, a, lo, hi, conv = _weighted_mode_tracks(st, usable, kind, n_dims=n_dims, R=R)
         status[usable & ~conv] = "not_converged"
     else:  # msd_fit
         p_max = int(min(MSD_FIT_MAX_LAG, max(2, st.n_steps.max(initial=2))))
