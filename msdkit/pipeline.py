@@ -165,7 +165,8 @@ def analyze_tracks(
     )
 
     radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
-    sigma = getattr(sample_fit, "sigma_um", None)
+    # the lag-1 size kernels use the Brownian step model's localisation error
+    sigma = getattr(sample_fit, "D_sigma_um", getattr(sample_fit, "sigma_um", None))
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
     size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
