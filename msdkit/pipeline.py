@@ -138,11 +138,9 @@ def analyze_tracks(
         corrected = True
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+    # per-track alpha borrows the sample's shared localisation error, fitted inside fit_tracks
     track_fits = fit.fit_tracks(tracks, method=estimator, **kw)
     sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, **kw)
-    # Short tracks borrow the sample's localisation error for a steadier per-track alpha.
-    if getattr(sample_fit, "sigma_um", None) is not None and np.isfinite(sample_fit.sigma_um):
-        track_fits = fit.fit_tracks(tracks, method=estimator, sigma_um=max(float(sample_fit.sigma_um), 0.0), **kw)
     ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
     if max_lag_frames is None and len(ens):
         # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
