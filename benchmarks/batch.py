@@ -9,7 +9,8 @@
    process, reading it in chunks of ``detection.chunk_frames`` frames; prints the worker's peak resident
    memory (``ru_maxrss``; target < 1.5 GB) beside the size of the movie itself.
 
-The machine's load average is printed too: other processes on the same cores lower the scaling ratio.
+The machine's load average and the workers' CPU time are printed too: other processes on the same cores
+lower the scaling ratio; equal worker CPU time in both runs shows that the work itself does not grow.
 
 Run: python benchmarks/batch.py [--workdir DIR] [--n-stacks 20] [--frames 200] [--size 128] [--repeats 1]
                                 [--memory-frames 2000] [--memory-size 512] [--chunk-frames N]
@@ -41,6 +42,11 @@ def process_and_measure_memory(input_path, cfg, stack_dir, *, stack_name, progre
     outcome = process_input(input_path, cfg, stack_dir, stack_name=stack_name, progress=progress)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux
     return dataclasses.replace(outcome, extra={**outcome.extra, "peak_rss_mb": peak_mb})
+
+
+def _children_cpu_s() -> float:
+    ru = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return ru.ru_utime + ru.ru_stime
 
 
 def _recipe(name: str, seed: int, *, n_frames: int, size_px: int, count: float):
@@ -84,16 +90,18 @@ def throughput(work: Path, n_stacks: int, n_frames: int, size_px: int, repeats: 
             cfg = _cfg(movies_dir, "beads_*.ome.tif", n_workers)
             out = work / f"out_throughput_{n_workers}w"
             load = os.getloadavg()[0]
+            cpu0 = _children_cpu_s()
             t0 = time.perf_counter()
             res = run_batch(cfg, output_dir=out, force=True, progress="off")
             wall = time.perf_counter() - t0
+            cpu = _children_cpu_s() - cpu0  # CPU time of the worker processes (ended and reaped)
             busy = sum(r.run_s for r in res.rows)
             if n_workers not in best or wall < best[n_workers][1]:
                 best[n_workers] = (res, wall)
             print(f"  run {rep + 1}, {n_workers} worker(s): {wall:7.1f} s wall, {total_frames / wall:7.1f} "
                   f"frames/s ({res.n_ok}/{len(res.rows)} ok; time inside the pipeline {busy:.1f} s, workers "
-                  f"busy {100 * busy / (wall * n_workers):.0f} % of the wall time; load average before "
-                  f"{load:.1f})")
+                  f"busy {100 * busy / (wall * n_workers):.0f} % of the wall time, worker CPU {cpu:.1f} s; "
+                  f"load average before {load:.1f})")
     (r1, w1), (r2, w2) = best[1], best[2]
     print(f"  best of {repeats}: 1 worker {total_frames / w1:.1f} frames/s, 2 workers "
           f"{total_frames / w2:.1f} frames/s; scaling ratio (2 workers / 1 worker): {w1 / w2:.2f}  "
