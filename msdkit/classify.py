@@ -188,6 +188,50 @@ def _step_statistics(pos: np.ndarray) -> tuple[float, float, float, float]:
     return corr, ng, straight, asym
 
 
+def _step_statistics_group(X: np.ndarray) -> np.ndarray:
+    """:func:`_step_statistics` of equal-length tracks X (g, n, d) at once; returns (g, 4)."""
+    g, n, nd = X.shape
+    out = np.full((g, 4), np.nan)
+    if g == 0 or n - 1 < 3:
+        return out
+    d = np.diff(X, axis=1)
+    dc = d - d.mean(1, keepdims=True)
+    num = np.einsum("gij,gij->g", dc[:, 1:], dc[:, :-1])
+    den = np.einsum("gij,gij->g", dc, dc)
+    r2 = np.einsum("gij,gij->gi", d, d)
+    m2 = r2.mean(1)
+    m4 = np.einsum("gi,gi->g", r2, r2) / r2.shape[1]
+    path = np.sqrt(r2).sum(1)
+    end = np.sqrt(np.einsum("gj,gj->g", X[:, -1] - X[:, 0], X[:, -1] - X[:, 0]))
+    Xc = X - X.mean(1, keepdims=True)
+    c = np.einsum("gij,gik->gjk", Xc, Xc) / (n - 1)
+    fin = np.all(np.isfinite(c), axis=(1, 2))
+    ev = np.full((g, nd), np.nan)
+    if fin.any():
+        ev[fin] = np.linalg.eigvalsh(c[fin])
+    evs = ev.sum(1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out[:, 0] = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+        # α2 = ⟨r⁴⟩ / ((1 + 2/d) ⟨r²⟩²) − 1 (Rahman 1964): 0 for Gaussian steps
+        out[:, 1] = np.where(m2 > 0, m4 / ((1.0 + 2.0 / nd) * m2 * m2) - 1.0, np.nan)
+        out[:, 2] = np.where(path > 0, end / np.where(path > 0, path, 1.0), np.nan)
+        out[:, 3] = np.where(evs > 0, ((ev[:, -1] - ev[:, 0]) / (ev[:, -1] + ev[:, 0])) ** 2, np.nan)
+    return out
+
+
+def _step_statistics_all(positions: list) -> np.ndarray:
+    """:func:`_step_statistics` of every track (T, 4), computed per group of equal-length tracks."""
+    T = len(positions)
+    out = np.full((T, 4), np.nan)
+    if T == 0:
+        return out
+    span = np.array([p.shape[0] for p in positions], dtype=np.int64)
+    for n_pts in np.unique(span):
+        idx = np.flatnonzero(span == n_pts)
+        out[idx] = _step_statistics_group(np.stack([positions[i] for i in idx]))
+    return out
+
+
 # -------------------------------------------------------------------------------------- classification
 @dataclass(frozen=True)
 class _Fits:
@@ -438,7 +482,7 @@ def classify_tracks(
         max_alpha_ci_width=max_alpha_ci_width,
     )
     T = fits.ids.size
-    stats_ = np.array([_step_statistics(p) for p in fits.positions]) if T else np.zeros((0, 4))
+    stats_ = _step_statistics_all(fits.positions) if T else np.zeros((0, 4))
     is_conf = labels == "confined"
     is_dir = labels == "directed"
     ll = fits.ll
@@ -725,21 +769,35 @@ def sample_motion(
     ta_cnt = np.zeros((n_tr, n_max))
     ea = np.zeros((n_tr, n_max))
     ea_cnt = np.zeros((n_tr, n_max))
-    if n_tr:
-        Lmax = int(lengths.max())
-        P = np.full((n_tr, Lmax, fits.n_axes), np.nan)
-        for i, p in enumerate(pos):
-            P[i, : p.shape[0]] = p - p[0]
-        for j, n in enumerate(lags):
-            if n >= Lmax:
-                break
-            sq = np.sum((P[:, n:] - P[:, :-n]) ** 2, axis=2)
-            ok = np.isfinite(sq)
-            ta_sum[:, j] = np.where(ok, sq, 0.0).sum(1) / np.maximum(ok.sum(1), 1)
-            ta_cnt[:, j] = ok.any(1)
-            e2 = np.sum(P[:, n] ** 2, axis=1)
-            ea_cnt[:, j] = np.isfinite(e2)
-            ea[:, j] = np.where(np.isfinite(e2), e2, 0.0)
+    k_eb = int(max(1, eb_lag_frames))
+    eb_col = np.full(n_tr, np.nan)  # per-track time-averaged MSD at lag k_eb
+    s2_ = np.zeros(n_tr)  # per-track sums of squared one-frame steps, and of their squares
+    s4_ = np.zeros(n_tr)
+    # tracks of one length at a time, in chunks small enough to stay in cache (positions are finite)
+    for L in np.unique(lengths) if n_tr else ():
+        members = np.flatnonzero(lengths == L)
+        chunk = max(1, 262144 // (int(L) * fits.n_axes))
+        for c0 in range(0, members.size, chunk):
+            gi = members[c0 : c0 + chunk]
+            Q = np.stack([pos[i] for i in gi])
+            Q = Q - Q[:, :1]
+            for j, n in enumerate(lags):
+                if n >= L:
+                    break
+                dq = Q[:, n:] - Q[:, :-n]
+                ta_sum[gi, j] = np.einsum("gij,gij->g", dq, dq) / (L - n)
+                ta_cnt[gi, j] = 1.0
+                e2 = np.einsum("gj,gj->g", Q[:, n], Q[:, n])
+                fin = np.isfinite(e2)
+                ea_cnt[gi, j] = fin
+                ea[gi, j] = np.where(fin, e2, 0.0)
+            if L > k_eb + 1:
+                dk = Q[:, k_eb:] - Q[:, :-k_eb]
+                eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
+            d1 = np.diff(Q, axis=1)
+            r2 = np.einsum("gij,gij->gi", d1, d1)
+            s2_[gi] = r2.sum(1)
+            s4_[gi] = np.einsum("gi,gi->g", r2, r2)
 
     def _means(wts):
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -778,14 +836,10 @@ def sample_motion(
         if diffs.size:
             diff_ci = tuple(float(v) for v in np.quantile(diffs, [0.005, 0.995]))
 
-    k_eb = int(max(1, eb_lag_frames))
     eb = eb_exp = np.nan
     ok_eb = lengths > k_eb + 1
     if ok_eb.sum() >= 3:
-        col = np.array(
-            [np.mean(np.sum((p[k_eb:] - p[:-k_eb]) ** 2, axis=1))
-             for p, o in zip(pos, ok_eb, strict=True) if o]
-        )
+        col = eb_col[ok_eb]
         eb = float(np.var(col) / np.mean(col) ** 2)
         D_bar = float(np.nanmedian(fits.D_um2_s[use]))
         s2 = float(np.nanmedian(fits.sigma_um[use] ** 2))
@@ -800,10 +854,7 @@ def sample_motion(
 
     ng = ng_se = ng_within = np.nan
     if n_tr:
-        r2 = [np.sum(np.diff(p, axis=0) ** 2, axis=1) for p in pos]
-        cnt = np.array([r.size for r in r2], float)
-        s2_ = np.array([r.sum() for r in r2])
-        s4_ = np.array([np.sum(r * r) for r in r2])
+        cnt = (lengths - 1).astype(float)
         kk = 1.0 + 2.0 / fits.n_axes
 
         def _ng(wts):
