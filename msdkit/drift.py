@@ -140,12 +140,24 @@ def _steps(tracks: pd.DataFrame, cols: tuple[str, ...]):
     f = tracks["frame"].to_numpy().astype(np.int64)
     xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])
     ok = np.all(np.isfinite(xyz), axis=1)
-    t, f, xyz = t[ok], f[ok], xyz[ok]
-    order = np.lexsort((f, t))
-    t, f, xyz = t[order], f[order], xyz[order]
+    if not ok.all():
+        t, f, xyz = t[ok], f[ok], xyz[ok]
+    if not _sorted_pairs(t, f):
+        order = np.lexsort((f, t))
+        t, f, xyz = t[order], f[order], xyz[order]
     same = (t[1:] == t[:-1]) & (f[1:] > f[:-1])
-    _, tid = np.unique(t, return_inverse=True)
+    # t is sorted: the index of each track among the distinct ids counts the changes of id before it
+    tid = np.concatenate([[0], np.cumsum(t[1:] != t[:-1])]) if t.size else np.zeros(0, np.int64)
     return tid[:-1][same], f[:-1][same], (f[1:] - f[:-1])[same], (xyz[1:] - xyz[:-1])[same]
+
+
+def _sorted_pairs(t: np.ndarray, f: np.ndarray) -> bool:
+    """Whether rows are already in strictly increasing (track, frame) order (then no sort is needed)."""
+    if t.size < 2:
+        return True
+    if not np.all(t[1:] >= t[:-1]):
+        return False
+    return bool(np.all((t[1:] > t[:-1]) | (f[1:] > f[:-1])))
 
 
 def _robust_scale(x: np.ndarray) -> float:
@@ -155,15 +167,25 @@ def _robust_scale(x: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(x - np.median(x))))
 
 
-def _winsorise(d: np.ndarray, k: float = 6.0) -> np.ndarray:
-    """Clip each axis at median ± k robust SD (guards against linking errors; no effect on Gaussian steps)."""
+def _winsorise(d: np.ndarray, k: float = 6.0, return_scales: bool = False):
+    """Clip each axis at median ± k robust SD (guards against linking errors; no effect on Gaussian steps).
+
+    With ``return_scales``, also the robust SD of each axis, which clipping at k > 1 robust SD leaves
+    unchanged (median and median absolute deviation are order statistics inside the clip bounds), so it is
+    the robust SD of the clipped steps too.
+    """
     out = d.copy()
+    scales = np.zeros(d.shape[1])
     for j in range(d.shape[1]):
-        m = np.median(d[:, j])
-        s = _robust_scale(d[:, j])
+        x = np.ascontiguousarray(d[:, j])
+        if x.size == 0:
+            continue
+        m = np.median(x)
+        s = float(1.4826 * np.median(np.abs(x - m)))
+        scales[j] = s
         if s > 0:
             np.clip(out[:, j], m - k * s, m + k * s, out=out[:, j])
-    return out
+    return (out, scales) if return_scales else out
 
 
 def _linear_fit(S: np.ndarray, G: np.ndarray, dt: float, n_iter: int = 30):
@@ -190,7 +212,7 @@ def _linear_fit(S: np.ndarray, G: np.ndarray, dt: float, n_iter: int = 30):
     return v, cov, w
 
 
-def _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation):
+def _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation, axis_scales=None):
     """Velocity per block of frames and its variance.
 
     The variance is the white-step variance (pooled robust step variance × frames / duration²) times
@@ -200,14 +222,26 @@ def _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation):
     lo, hi = int(f0.min()), int((f0 + gap).max())
     edges = np.linspace(lo, hi, n_blocks + 1)
     blk = np.clip(np.searchsorted(edges, f0, side="right") - 1, 0, n_blocks - 1)
-    step_var = np.array([_robust_scale(d[:, j]) ** 2 for j in range(d.shape[1])])
+    if axis_scales is None:
+        step_var = np.array([_robust_scale(d[:, j]) ** 2 for j in range(d.shape[1])])
+    else:
+        step_var = np.asarray(axis_scales, float) ** 2
+    # steps grouped by block, keeping their order within a block (a stable sort)
+    order = np.argsort(blk, kind="stable")
+    bounds = np.searchsorted(blk[order], np.arange(n_blocks + 1))
+    tid_s, gap_s, d_s = tid[order], gap[order], d[order]
+    track_sorted = tid.size < 2 or bool(np.all(tid[1:] >= tid[:-1]))
     out_v, out_var = [], []
     for b in range(n_blocks):
-        m = blk == b
-        if np.unique(tid[m]).size < 3:
+        a, z = bounds[b], bounds[b + 1]
+        tb = tid_s[a:z]
+        n_distinct = (1 + int(np.count_nonzero(tb[1:] != tb[:-1])) if tb.size else 0) if track_sorted else (
+            np.unique(tb).size
+        )
+        if n_distinct < 3:
             continue
-        G = gap[m].astype(float)
-        dd = d[m]
+        G = gap_s[a:z].astype(float)
+        dd = d_s[a:z]
         s = _robust_scale(dd.ravel())
         w = np.minimum(1.0, _HUBER_K * 3.0 * s / np.maximum(np.abs(dd - np.median(dd, 0)), 1e-300))
         v = (w * dd).sum(0) / (w * G[:, None]).sum(0) / dt
@@ -295,7 +329,8 @@ def estimate_drift(
     nd = len(cols)
     tid, f0, gap, d = _steps(tracks, cols)
     names = ["x", "y", "z"][:nd]
-    frames_all = np.sort(tracks["frame"].to_numpy().astype(np.int64))
+    frames_col = tracks["frame"].to_numpy().astype(np.int64)
+    frames_all = np.array([frames_col.min(), frames_col.max()]) if frames_col.size else frames_col
     if tid.size == 0:
         first = int(frames_all[0]) if frames_all.size else 0
         path = _path_table(
@@ -315,7 +350,7 @@ def estimate_drift(
             dt,
             "no track has two positions",
         )
-    d = _winsorise(d)
+    d, axis_scales = _winsorise(d, return_scales=True)
     n_tr = int(tid.max()) + 1
     S = np.stack([np.bincount(tid, d[:, j], n_tr) for j in range(nd)], axis=1)
     G = np.bincount(tid, gap, n_tr).astype(float)
@@ -340,9 +375,9 @@ def estimate_drift(
     n_blocks = int(np.clip(span // 10, 1, 20))
     p_const, p_blocks = 1.0, 1.0
     if n_blocks >= 3:
-        white = np.array([_robust_scale(d[:, j]) ** 2 for j in range(nd)]) / G.sum() / dt**2
+        white = axis_scales**2 / G.sum() / dt**2
         inflation = float(np.clip(np.max(np.diag(cov) / np.maximum(white, 1e-300)), 1.0, 100.0))
-        vb, varb = _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation)
+        vb, varb = _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation, axis_scales)
         if vb.shape[0] >= 3:
             good = np.all(varb > 0, axis=1)
             vb, varb = vb[good], varb[good]
