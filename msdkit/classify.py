@@ -135,9 +135,12 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
     f = tracks["frame"].to_numpy().astype(np.int64)
     xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])
     ok = np.all(np.isfinite(xyz), axis=1)
-    t, f, xyz = t[ok], f[ok], xyz[ok]
-    order = np.lexsort((f, t))
-    t, f, xyz = t[order], f[order], xyz[order]
+    if not ok.all():
+        t, f, xyz = t[ok], f[ok], xyz[ok]
+    in_order = t.size < 2 or bool(np.all(t[1:] >= t[:-1]) and np.all((t[1:] > t[:-1]) | (f[1:] > f[:-1])))
+    if not in_order:  # rows already in (track, frame) order with unique pairs need no sort
+        order = np.lexsort((f, t))
+        t, f, xyz = t[order], f[order], xyz[order]
     if t.size == 0:
         return _TrackArrays(np.zeros(0, np.int64), np.zeros(0, np.int64), [])
     dup = (t[1:] == t[:-1]) & (f[1:] == f[:-1])
@@ -153,15 +156,13 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
         )
     start = np.flatnonzero(np.concatenate([[True], t[1:] != t[:-1]]))
     stop = np.append(start[1:], t.size)
-    positions = []
-    for a, b in zip(start, stop, strict=True):
-        fr = f[a:b]
-        p = xyz[a:b]
-        span = int(fr[-1] - fr[0] + 1)
-        if span != b - a:
-            grid = np.arange(fr[0], fr[-1] + 1)
-            p = np.column_stack([np.interp(grid, fr, p[:, j]) for j in range(p.shape[1])])
-        positions.append(p)
+    gapped = (f[stop - 1] - f[start] + 1) != (stop - start)
+    positions = [xyz[a:b] for a, b in zip(start.tolist(), stop.tolist(), strict=True)]
+    for i in np.flatnonzero(gapped):
+        fr = f[start[i] : stop[i]]
+        p = positions[i]
+        grid = np.arange(fr[0], fr[-1] + 1)
+        positions[i] = np.column_stack([np.interp(grid, fr, p[:, j]) for j in range(p.shape[1])])
     return _TrackArrays(t[start].astype(np.int64), (stop - start).astype(np.int64), positions)
 
 
