@@ -235,10 +235,14 @@ def frequency_weights(n_steps: int) -> np.ndarray:
 
 def periodograms(steps: np.ndarray, taper: np.ndarray | None = None) -> np.ndarray:
     """Periodogram of each track's steps summed over axes: (n_tracks, N, n_axes) → (n_tracks, N//2 + 1)."""
-    N = steps.shape[1]
+    T, N, d = steps.shape
     h = np.full(N, 1.0 / np.sqrt(N)) if taper is None else taper
-    F = np.fft.rfft(steps * h[None, :, None], axis=1)
-    return np.sum(F.real**2 + F.imag**2, axis=2)
+    out = np.empty((T, N // 2 + 1))
+    chunk = max(1, 65536 // max(N * d, 1))  # transforms along contiguous rows, a cache-sized block at a time
+    for a in range(0, T, chunk):
+        F = np.fft.rfft(steps[a : a + chunk].transpose(0, 2, 1) * h, axis=-1)
+        out[a : a + chunk] = np.sum(F.real**2 + F.imag**2, axis=1)
+    return out
 
 
 # ----------------------------------------------------------------------------------------- model banks
@@ -333,10 +337,18 @@ def _loglik_grid(
     logdet = np.log(spec) @ w  # (S, R)
     Q = wq[None, None, :] / spec  # (S, R, F)
     S, R, F = spec.shape
-    scale = (P @ Q.reshape(S * R, F).T).reshape(P.shape[0], S, R) / (n_axes * W)
-    scale = np.maximum(scale, 1e-300)
-    ll = -n_axes * (logdet[None] + W * np.log(scale) + W)
-    return np.where(valid[None], ll, -np.inf), scale
+    # in place on the (T, S, R) arrays, in the order -n_axes · (logdet + W log(scale) + W)
+    scale = (P @ Q.reshape(S * R, F).T).reshape(P.shape[0], S, R)
+    scale /= n_axes * W
+    np.maximum(scale, 1e-300, out=scale)
+    ll = np.log(scale)
+    ll *= W
+    ll += logdet[None]
+    ll += W
+    ll *= -n_axes
+    if not valid.all():
+        ll[:, ~valid] = -np.inf
+    return ll, scale
 
 
 @dataclass(frozen=True)
