@@ -227,7 +227,7 @@ def _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation, axis_scales=None
     else:
         step_var = np.asarray(axis_scales, float) ** 2
     # steps grouped by block, keeping their order within a block (a stable sort)
-    order = np.argsort(blk, kind="stable")
+    order = np.argsort(blk.astype(np.int16 if n_blocks < 2**15 else np.int64), kind="stable")  # radix sort
     bounds = np.searchsorted(blk[order], np.arange(n_blocks + 1))
     tid_s, gap_s, d_s = tid[order], gap[order], d[order]
     track_sorted = tid.size < 2 or bool(np.all(tid[1:] >= tid[:-1]))
