@@ -774,31 +774,65 @@ def sample_motion(
     eb_col = np.full(n_tr, np.nan)  # per-track time-averaged MSD at lag k_eb
     s2_ = np.zeros(n_tr)  # per-track sums of squared one-frame steps, and of their squares
     s4_ = np.zeros(n_tr)
-    # tracks of one length at a time, in chunks small enough to stay in cache (positions are finite)
-    for L in np.unique(lengths) if n_tr else ():
-        members = np.flatnonzero(lengths == L)
-        chunk = max(1, 262144 // (int(L) * fits.n_axes))
-        for c0 in range(0, members.size, chunk):
-            gi = members[c0 : c0 + chunk]
-            Q = np.stack([pos[i] for i in gi])
-            Q = Q - Q[:, :1]
+    # tracks sorted by length in cache-sized chunks; a chunk of equal lengths needs no padding (positions are
+    # finite), a mixed chunk (short tracks of many lengths) is padded with NaN to its longest track
+    by_len = np.argsort(lengths, kind="stable")
+    budget = 262144 // fits.n_axes
+    c0 = 0
+    while c0 < n_tr:
+        L = int(lengths[by_len[c0]])
+        n_same = int(np.searchsorted(lengths[by_len], L, side="right")) - c0
+        if n_same * L >= budget // 4 or n_same == n_tr - c0:
+            gi = by_len[c0 : c0 + max(1, min(n_same, budget // L))]
+        else:  # mixed chunk: grow while the padded block stays within the budget
+            c1 = c0 + 1
+            while c1 < n_tr and (c1 + 1 - c0) * int(lengths[by_len[c1]]) <= budget:
+                c1 += 1
+            gi = by_len[c0:c1]
+            L = int(lengths[gi].max())
+        c0 += gi.size
+        if lengths[gi].min() != L:
+            P = np.full((gi.size, L, fits.n_axes), np.nan)
+            for r, i in enumerate(gi):
+                P[r, : lengths[i]] = pos[i] - pos[i][0]
             for j, n in enumerate(lags):
                 if n >= L:
                     break
-                dq = Q[:, n:] - Q[:, :-n]
-                ta_sum[gi, j] = np.einsum("gij,gij->g", dq, dq) / (L - n)
-                ta_cnt[gi, j] = 1.0
-                e2 = np.einsum("gj,gj->g", Q[:, n], Q[:, n])
-                fin = np.isfinite(e2)
-                ea_cnt[gi, j] = fin
-                ea[gi, j] = np.where(fin, e2, 0.0)
+                sq = np.sum((P[:, n:] - P[:, :-n]) ** 2, axis=2)
+                ok = np.isfinite(sq)
+                ta_sum[gi, j] = np.where(ok, sq, 0.0).sum(1) / np.maximum(ok.sum(1), 1)
+                ta_cnt[gi, j] = ok.any(1)
+                e2 = np.sum(P[:, n] ** 2, axis=1)
+                ea_cnt[gi, j] = np.isfinite(e2)
+                ea[gi, j] = np.where(np.isfinite(e2), e2, 0.0)
             if L > k_eb + 1:
-                dk = Q[:, k_eb:] - Q[:, :-k_eb]
-                eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
-            d1 = np.diff(Q, axis=1)
-            r2 = np.einsum("gij,gij->gi", d1, d1)
-            s2_[gi] = r2.sum(1)
-            s4_[gi] = np.einsum("gi,gi->g", r2, r2)
+                sq = np.sum((P[:, k_eb:] - P[:, :-k_eb]) ** 2, axis=2)
+                ok = np.isfinite(sq)
+                eb_col[gi] = np.where(ok, sq, 0.0).sum(1) / np.maximum(ok.sum(1), 1)
+            r2 = np.sum(np.diff(P, axis=1) ** 2, axis=2)
+            ok = np.isfinite(r2)
+            s2_[gi] = np.where(ok, r2, 0.0).sum(1)
+            s4_[gi] = np.where(ok, r2 * r2, 0.0).sum(1)
+            continue
+        Q = np.stack([pos[i] for i in gi])
+        Q = Q - Q[:, :1]
+        for j, n in enumerate(lags):
+            if n >= L:
+                break
+            dq = Q[:, n:] - Q[:, :-n]
+            ta_sum[gi, j] = np.einsum("gij,gij->g", dq, dq) / (L - n)
+            ta_cnt[gi, j] = 1.0
+            e2 = np.einsum("gj,gj->g", Q[:, n], Q[:, n])
+            fin = np.isfinite(e2)
+            ea_cnt[gi, j] = fin
+            ea[gi, j] = np.where(fin, e2, 0.0)
+        if L > k_eb + 1:
+            dk = Q[:, k_eb:] - Q[:, :-k_eb]
+            eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
+        d1 = np.diff(Q, axis=1)
+        r2 = np.einsum("gij,gij->gi", d1, d1)
+        s2_[gi] = r2.sum(1)
+        s4_[gi] = np.einsum("gi,gi->g", r2, r2)
 
     def _means(wts):
         with np.errstate(invalid="ignore", divide="ignore"):
