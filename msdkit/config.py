@@ -183,8 +183,8 @@ class DetectionConfig(BaseModel):
     spot_diameter_px: Annotated[float, Field(gt=1, le=99)] | None = None  # FWHM of an in-focus spot
     min_mass: Annotated[float, Field(ge=0)] | None = None  # camera counts (matched-filter brightness)
     false_spots_per_frame: Annotated[float, Field(gt=0, le=100)] = 0.01  # target for the auto min_mass
-    max_precision_px: Annotated[float, Field(gt=0)] | None = None  # auto: half the spot SD
-    max_sigma_px: Annotated[float, Field(gt=0)] | None = None  # auto: 2.5 x the spot SD (far out of focus)
+    max_precision_px: Annotated[float, Field(gt=0)] | None = None  # auto: the spot SD
+    max_sigma_px: Annotated[float, Field(gt=0)] | None = None  # auto: 4 x the spot SD (far out of focus)
     chunk_frames: Annotated[int, Field(ge=1)] = 200
 
 
@@ -195,6 +195,8 @@ class LinkingConfig(BaseModel):
     max_step_px: Annotated[float, Field(gt=0)] | None = None
     max_gap_frames: Annotated[int, Field(ge=0, le=20)] = 2
     min_track_points: Annotated[int, Field(ge=2)] = 10
+    # joining radius of an isolated pair in step SDs (auto: see msdkit.link.DEFAULT_ACCEPTANCE_SD)
+    acceptance_sd: Annotated[float, Field(ge=2, le=8)] | None = None
 
 
 class AnalysisConfig(BaseModel):

@@ -15,7 +15,8 @@ How a frame is processed (:func:`locate_spots`)
    centre, width, brightness and background (weights from a noise model: read/background variance plus shot
    noise proportional to the signal). The pixel-integrated model makes the positions free of pixel-locking.
 5. Spots that are badly localised (``precision_px > max_precision_px``) or far wider than an in-focus spot
-   (``sigma_px > max_sigma_px``, i.e. far out of focus) are dropped.
+   (``sigma_px > max_sigma_px``, i.e. far out of focus) are dropped. Both limits are loose by default:
+   shape filters also select on motion during the exposure (see :func:`choose_detection_settings`).
 
 :func:`choose_detection_settings` finds every setting from a sample of the movie: the spot width from fits to
 the
@@ -482,13 +483,11 @@ def choose_detection_settings(
     false_spots_per_frame : float, default=0.01
         Target for the automatic ``min_mass``: expected number of noise maxima per frame taken for spots.
     max_precision_px : float, px, optional
-        Spots with a larger estimated localisation SD are dropped. Default: half the spot SD (an in-focus spot
-        at the threshold is localised to about a quarter of its SD, so this drops only spots far out of focus
-        or
-        blurred beyond use).
+        Spots with a larger estimated localisation SD are dropped. Default: the spot SD (an in-focus spot at
+        the threshold is localised to about a quarter of its SD, so this drops only spots that carry almost no
+        position information).
     max_sigma_px : float, px, optional
-        Spots whose fitted Gaussian SD exceeds this are dropped (far out of focus). Default: 2.5 x the spot
-        SD.
+        Spots whose fitted Gaussian SD exceeds this are dropped (far out of focus). Default: 4 x the spot SD.
 
     Returns
     -------
@@ -509,6 +508,11 @@ def choose_detection_settings(
 
     The shot-noise factor is the slope of the squared fit residuals against the fitted signal, over the pixels
     of the brightest spots.
+
+    Every filter on a spot's shape also selects on its motion during the exposure: a particle that moved
+    more while the shutter was open makes a wider, dimmer, less precisely localised spot, so dropping such
+    spots removes longer steps and biases D low. The width and precision limits therefore default to values
+    that only drop spots useless for positions (far out of focus).
     """
     frames = _as_frames(frames_sample, "frames_sample")
     if not (false_spots_per_frame > 0):
@@ -612,10 +616,10 @@ def choose_detection_settings(
         u = min_mass_val / mass_sd
     if max_precision_px is None:
         auto.append("max_precision_px")
-        max_precision_px = 0.5 * sigma
+        max_precision_px = 1.0 * sigma
     if max_sigma_px is None:
         auto.append("max_sigma_px")
-        max_sigma_px = 2.5 * sigma
+        max_sigma_px = 4.0 * sigma
     return DetectionSettings(
         spot_sigma_px=float(sigma),
         spot_diameter_px=float(sigma * _FWHM_PER_SIGMA),
@@ -841,7 +845,11 @@ def locate_spots(frames, *, settings: DetectionSettings, first_frame: int = 0) -
         )
         with np.errstate(invalid="ignore"):
             prec = np.sqrt(0.5 * (cov[:, 0, 0] + cov[:, 1, 1]))
-        keep = ok & (np.abs(p[:, 0]) <= 1.5) & (np.abs(p[:, 1]) <= 1.5)  # stayed on its own maximum
+        # the fit must stay inside its window (a streak's centre may lie a few pixels from its brightest
+        # pixel;
+        # a tighter limit would drop the spots of particles that moved most during the exposure)
+        lim = h - 1.0
+        keep = ok & (np.abs(p[:, 0]) <= lim) & (np.abs(p[:, 1]) <= lim)
         keep &= (p[:, 4] <= s.max_sigma_px) & (prec <= s.max_precision_px)
         x, y = cols + p[:, 0], rows + p[:, 1]
         for i in np.unique(fidx):

@@ -246,6 +246,7 @@ def movie_to_tracks(
                 "file's OME metadata gives it. Set acquisition.pixel_size_um (µm per pixel)."
             )
         n_frames = stack.n_frames
+        frame_shape = tuple(stack.frame_shape)
         sample_idx = np.unique(np.linspace(0, n_frames - 1, min(n_frames, 40)).astype(int))
         sample = np.stack([stack.read_frames(int(i), int(i) + 1)[0] for i in sample_idx])
         settings = detect.choose_detection_settings(
@@ -263,7 +264,8 @@ def movie_to_tracks(
     spots = pd.concat(chunks, ignore_index=True) if chunks else schema.empty_frame(schema.SPOT_COLUMNS)
     tracks_px, link_settings = link.link_spots(
         spots, max_step_px=lnk.max_step_px, max_gap_frames=lnk.max_gap_frames,
-        min_track_points=lnk.min_track_points, frame_interval_s=dt,
+        min_track_points=lnk.min_track_points, frame_interval_s=dt, acceptance_sd=lnk.acceptance_sd,
+        frame_shape=frame_shape,
     )
     tracks = pd.DataFrame({
         "track": tracks_px["track"].to_numpy(np.int64),
