@@ -195,7 +195,7 @@ class LinkingConfig(BaseModel):
     max_step_px: Annotated[float, Field(gt=0)] | None = None
     max_gap_frames: Annotated[int, Field(ge=0, le=20)] = 2
     min_track_points: Annotated[int, Field(ge=2)] = 10
-    # joining radius of an isolated pair in step SDs (auto: see msdkit.link.DEFAULT_ACCEPTANCE_SD)
+    # joining radius of an isolated pair in step SDs (auto: msdkit.link.automatic_acceptance_sd)
     acceptance_sd: Annotated[float, Field(ge=2, le=8)] | None = None
 
 

@@ -55,7 +55,7 @@ __all__ = ["LinkSettings", "link_spots", "estimate_step_sd_px", "automatic_accep
 #: Margin, in step SDs, added to the distance at which a join is as likely wrong as right, at a continuation
 #: fraction of 0.8; it grows by ACCEPTANCE_MARGIN_SLOPE per unit of continuation (calibrated, see
 #: automatic_acceptance_sd).
-ACCEPTANCE_MARGIN_SD = 0.85
+ACCEPTANCE_MARGIN_SD = 0.95
 ACCEPTANCE_MARGIN_SLOPE = 2.5
 #: Range of the automatic joining radius, in step SDs.
 ACCEPTANCE_RANGE_SD = (3.0, 6.0)
@@ -332,11 +332,14 @@ def automatic_acceptance_sd(step_sd_px: float, continuation: float, spots_per_px
     ``k_even`` alone is the Bayes decision for a single join, but it loses the long true steps, which carry
     much of the squared displacement (7 % of it lies beyond 3.3 SD), so D comes out low. The margin was
     calibrated on the twelve scenes of benchmarks/detection.py (20–100 particles in focus, 500–5000
-    photons, focal depth 0.6–2 µm, PSF widths, camera noise, 8-bit data, two movies each): it puts the
-    pooled covariance-based D of the tracks within ±3 % of that of the same spots joined by their true
-    identity (RMS 1.3 %), where a fixed radius ranged over ±10 %. Scenes where few particles vanish
-    between frames (high q) need a wider margin: their wrong joins are rarer than the long steps a tight
-    radius would lose.
+    photons, focal depth 0.6–2 µm, PSF widths, camera noise, 8-bit data; two or three movies each) so that
+    the pooled covariance-based D of the tracks matches the true D of the scene: about 0.85 SD makes
+    linking neutral (D of the tracks within ±2.5 % of that of the same spots joined by their true identity,
+    where a fixed radius ranged over ±10 %), and a further 0.1 SD (+1 % in D) offsets the spots that
+    detection loses because their particle moved during the exposure (a blurred spot is dimmer; losing it
+    removes long steps: -1.4 % in D on average with 15 ms exposures at 30 frames/s). Scenes where few
+    particles vanish between frames (high q) need a wider margin: their wrong joins are rarer than the long
+    steps a tight radius would lose.
     """
     q = min(max(float(continuation), 0.05), 0.995)
     crowd = 2.0 * math.pi * step_sd_px**2 * max(float(spots_per_px2), 1e-12) * (1.0 - q) ** 2
