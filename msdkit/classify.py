@@ -35,7 +35,7 @@ from scipy import stats
 
 from .errors import InputError, expected_got
 from .motion_models import ALPHA_GRID, fit_step_models
-from .schema import MOTION_CLASSES
+from .schema import MOTION_CLASSES, check_track_table, position_columns
 
 __all__ = ["classify_tracks", "sample_motion", "SampleMotion", "CLASS_COLUMNS"]
 
@@ -89,33 +89,8 @@ class _TrackArrays:
     positions: list  # per track (n_frames_span, d) on the frame grid, gaps filled by linear interpolation
 
 
-def _coordinate_columns(tracks: pd.DataFrame) -> tuple[str, ...]:
-    return ("x_um", "y_um", "z_um") if "z_um" in tracks.columns else ("x_um", "y_um")
-
-
 def _check_tracks(tracks, frame_interval_s, exposure_s):
-    if not isinstance(tracks, pd.DataFrame):
-        raise InputError(
-            expected_got(
-                "tracks",
-                "a DataFrame with columns track, frame, x_um, y_um",
-                type(tracks).__name__,
-                "Pass a track table.",
-            )
-        )
-    need = ("track", "frame", "x_um", "y_um")
-    missing = [c for c in need if c not in tracks.columns]
-    if missing:
-        raise InputError(
-            expected_got(
-                "tracks columns",
-                ", ".join(need),
-                list(tracks.columns),
-                f"Add the missing column(s) {missing} (positions in µm).",
-            )
-        )
-    if not (frame_interval_s is not None and np.isfinite(frame_interval_s) and frame_interval_s > 0):
-        raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
+    check_track_table(tracks, frame_interval_s)
     exposure = frame_interval_s if exposure_s is None else float(exposure_s)
     if not 0 <= exposure <= frame_interval_s * (1 + 1e-9):
         raise InputError(
@@ -130,7 +105,7 @@ def _check_tracks(tracks, frame_interval_s, exposure_s):
 
 
 def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
-    cols = _coordinate_columns(tracks)
+    cols = position_columns(tracks)
     t = tracks["track"].to_numpy()
     f = tracks["frame"].to_numpy().astype(np.int64)
     xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])

@@ -36,6 +36,7 @@ import pandas as pd
 from scipy import ndimage, stats
 
 from .errors import InputError, expected_got
+from .schema import check_track_table
 
 __all__ = ["DriftEstimate", "estimate_drift", "remove_drift"]
 
@@ -104,34 +105,8 @@ class DriftEstimate:
         return bool(self.significant and self.safe_to_subtract)
 
 
-def _coordinate_columns(tracks: pd.DataFrame) -> tuple[str, ...]:
-    return ("x_um", "y_um", "z_um") if "z_um" in tracks.columns else ("x_um", "y_um")
-
-
 def _validate(tracks: pd.DataFrame, frame_interval_s: float) -> tuple[str, ...]:
-    if not isinstance(tracks, pd.DataFrame):
-        raise InputError(
-            expected_got(
-                "tracks",
-                "a DataFrame with columns track, frame, x_um, y_um",
-                type(tracks).__name__,
-                "Pass a track table.",
-            )
-        )
-    need = ("track", "frame", "x_um", "y_um")
-    missing = [c for c in need if c not in tracks.columns]
-    if missing:
-        raise InputError(
-            expected_got(
-                "tracks columns",
-                ", ".join(need),
-                list(tracks.columns),
-                f"Add the missing column(s) {missing} (positions in µm).",
-            )
-        )
-    if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
-        raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
-    return _coordinate_columns(tracks)
+    return check_track_table(tracks, frame_interval_s)
 
 
 def _steps(tracks: pd.DataFrame, cols: tuple[str, ...]):

@@ -11,6 +11,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .errors import InputError, expected_got
+
 #: Spots found by detection, one row per spot.
 SPOT_COLUMNS: dict[str, str] = {
     "frame": "int64",
@@ -84,3 +86,29 @@ def coerce(df: pd.DataFrame, columns: dict[str, str]) -> pd.DataFrame:
         if name in out.columns:
             out[name] = out[name].astype(np.dtype(dtype))
     return out
+
+
+def position_columns(tracks: pd.DataFrame) -> tuple[str, ...]:
+    """Position columns of a track table in µm: x_um, y_um (and z_um when present)."""
+    return ("x_um", "y_um", "z_um") if "z_um" in tracks.columns else ("x_um", "y_um")
+
+
+def check_track_table(tracks, frame_interval_s) -> tuple[str, ...]:
+    """Validate a track table and frame interval at a stage's public boundary; return its position columns.
+
+    Raises
+    ------
+    InputError
+        When ``tracks`` is not a DataFrame, lacks track/frame/x_um/y_um, or the frame interval is not > 0.
+    """
+    if not isinstance(tracks, pd.DataFrame):
+        raise InputError(expected_got("tracks", "a DataFrame with columns track, frame, x_um, y_um",
+                                      type(tracks).__name__, "Pass a track table."))
+    need = ("track", "frame", "x_um", "y_um")
+    missing = [c for c in need if c not in tracks.columns]
+    if missing:
+        raise InputError(expected_got("tracks columns", ", ".join(need), list(tracks.columns),
+                                      f"Add the missing column(s) {missing} (positions in µm)."))
+    if not (frame_interval_s is not None and np.isfinite(frame_interval_s) and frame_interval_s > 0):
+        raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s, "Give seconds per frame."))
+    return position_columns(tracks)
