@@ -1,6 +1,8 @@
-"""Compiled loops of the MSD engine (numba); imported lazily by :mod:`msdkit.msd`.
+"""Compiled loops of the MSD engine and of the other track-level stages (numba); imported lazily.
 
-Each kernel makes one pass over a block so that the engine's cost stays close to that of its FFTs.
+Each kernel makes one pass over a block so that the engine's cost stays close to that of its FFTs. The
+selection kernels (:func:`median`, :func:`median_abs_deviation`) give exactly what :func:`numpy.median` gives
+(the middle value, or the mean of the two middle values), in a few linear passes instead of a partition.
 """
 
 from __future__ import annotations
@@ -277,3 +279,248 @@ def step_statistics(c0, c1, c2, n_dims, frame, start, count):  # pragma: no cove
                 k += 1
             prev_ok = ok
     return steps, step_track, seg_start, seg_len, n_steps, n_pairs, sum_sq, sum_cross
+
+
+# ------------------------------------------------------------------------------------------- selection
+_SELECT_BINS = 4096
+_SELECT_SMALL = 4096
+
+
+@numba.njit(cache=True)
+def _bucket_select(buf, k):  # pragma: no cover - compiled
+    """Values of rank k and k + 1 (0-based, ascending; rank k + 1 clipped to the last) of buf (overwritten).
+
+    Bucket selection: count the values into equal-width bins between their extremes, keep the bin that holds
+    rank k and repeat on it; the bin index is a non-decreasing function of the value, so ranks stay inside
+    their bins (when ranks k and k + 1 fall in different bins, they are the largest value of the first and
+    the smallest of the second). A small remainder is sorted.
+    """
+    m = buf.size
+    k2 = min(k + 1, m - 1)
+    while True:
+        lo = np.inf
+        hi = -np.inf
+        for i in range(m):
+            lo = min(lo, buf[i])
+            hi = max(hi, buf[i])
+        width = hi - lo
+        if lo == hi:
+            return lo, lo
+        if m <= _SELECT_SMALL or not np.isfinite(width):
+            tmp = np.sort(buf[:m])
+            return tmp[k], tmp[k2]
+        scale = _SELECT_BINS / width
+        counts = np.zeros(_SELECT_BINS + 1, np.int64)
+        for i in range(m):
+            b = min(int((buf[i] - lo) * scale), _SELECT_BINS - 1)
+            counts[b + 1] += 1
+        for b in range(_SELECT_BINS):
+            counts[b + 1] += counts[b]
+        b1 = 0
+        while counts[b1 + 1] <= k:
+            b1 += 1
+        b2 = b1
+        while counts[b2 + 1] <= k2:
+            b2 += 1
+        if b2 != b1:
+            top = -np.inf
+            bottom = np.inf
+            for i in range(m):
+                v = buf[i]
+                b = min(int((v - lo) * scale), _SELECT_BINS - 1)
+                if b == b1 and v > top:
+                    top = v
+                elif b == b2 and v < bottom:
+                    bottom = v
+            return top, bottom
+        j = 0
+        for i in range(m):  # in place: j never passes i
+            v = buf[i]
+            buf[j] = v
+            j += min(int((v - lo) * scale), _SELECT_BINS - 1) == b1
+        k -= counts[b1]
+        k2 -= counts[b1]
+        m = j
+
+
+@numba.njit(cache=True)
+def _select_pair(x, center, use_center, k):  # pragma: no cover - compiled
+    """Values of rank k and k + 1 (0-based, ascending; k + 1 clipped to the last) of v = x or |x - center|.
+
+    A strided sample brackets the two ranks (Floyd & Rivest 1975, Commun. ACM 18, 165); one pass counts the
+    values below the bracket and gathers those inside it, and :func:`_bucket_select` finishes on the few
+    gathered. If the bracket misses (unlucky sample), the whole array goes to :func:`_bucket_select`.
+    """
+    n = x.size
+    k2 = min(k + 1, n - 1)
+    if n > 4 * _SELECT_SMALL:
+        m = min(max(int(4.0 * np.sqrt(n)), 1024), 65536)
+        stride = n // m
+        smp = np.empty(m)
+        for i in range(m):
+            smp[i] = abs(x[i * stride] - center) if use_center else x[i * stride]
+        smp.sort()
+        half = 4.0 * np.sqrt(m)
+        ia = int(k / n * m - half)
+        ib = int(k2 / n * m + half) + 1
+        a = smp[ia] if ia >= 0 else -np.inf
+        b = smp[ib] if ib < m else np.inf
+        cap = min(n, int(n * (ib - ia + 1) / m * 2.0) + 1024)
+        buf = np.empty(cap + 1)
+        below = 0
+        j = 0
+        for i in range(n):  # branch-free: the comparisons are unpredictable
+            v = abs(x[i] - center) if use_center else x[i]
+            below += v < a
+            buf[min(j, cap)] = v
+            j += (v >= a) & (v <= b)
+        if j <= cap and below <= k and k2 < below + j:
+            return _bucket_select(buf[:j], k - below)
+    buf = np.empty(n)
+    for i in range(n):
+        buf[i] = abs(x[i] - center) if use_center else x[i]
+    return _bucket_select(buf, k)
+
+
+@numba.njit(cache=True)
+def median(x):  # pragma: no cover - compiled
+    """Median of a 1-D array of finite values, as numpy.median computes it (NaN when empty)."""
+    n = x.size
+    if n == 0:
+        return np.nan
+    a, b = _select_pair(x, 0.0, False, (n - 1) // 2)
+    return a if n % 2 else (a + b) / 2.0
+
+
+@numba.njit(cache=True)
+def median_abs_deviation(x, center):  # pragma: no cover - compiled
+    """Median of |x - center| (not scaled), as numpy.median(numpy.abs(x - center)) computes it."""
+    n = x.size
+    if n == 0:
+        return np.nan
+    a, b = _select_pair(x, center, True, (n - 1) // 2)
+    return a if n % 2 else (a + b) / 2.0
+
+
+# ----------------------------------------------------------------------------------------------- drift
+@numba.njit(cache=True)
+def drift_steps(track, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
+    """Collect the steps between consecutive rows of a track (rows sorted by track, frame; NaN rows skipped).
+
+    Returns tid (index of the track among the tracks with a finite row), f0 (start frame), gap (frames) and
+    d (n_steps, n_dims) displacement, as ``msdkit.drift._steps`` defines them.
+    """
+    n = track.size
+    cap = max(n - 1, 0)
+    tid = np.empty(cap, np.int64)
+    f0 = np.empty(cap, np.int64)
+    gap = np.empty(cap, np.int64)
+    disp = np.empty((cap, n_dims))
+    k = 0
+    t = -1
+    prev = -1
+    for i in range(n):
+        good = np.isfinite(c0[i])
+        if n_dims > 1:
+            good = good and np.isfinite(c1[i])
+        if n_dims > 2:
+            good = good and np.isfinite(c2[i])
+        if not good:
+            continue
+        if prev < 0 or track[i] != track[prev]:
+            t += 1
+        elif frame[i] > frame[prev]:
+            tid[k] = t
+            f0[k] = frame[prev]
+            gap[k] = frame[i] - frame[prev]
+            disp[k, 0] = c0[i] - c0[prev]
+            if n_dims > 1:
+                disp[k, 1] = c1[i] - c1[prev]
+            if n_dims > 2:
+                disp[k, 2] = c2[i] - c2[prev]
+            k += 1
+        prev = i
+    return tid[:k], f0[:k], gap[:k], disp[:k]
+
+
+@numba.njit(cache=True)
+def track_sums(tid, gap, d, n_tr, f0, first, n_frames):  # pragma: no cover - compiled
+    """Per track: summed displacement S (n_tr, n_dims) and summed gap G; per frame: one-frame steps from it.
+
+    The sums run in row order, as numpy.bincount adds its weights.
+    """
+    nd = d.shape[1]
+    S = np.zeros((n_tr, nd))
+    G = np.zeros(n_tr)
+    n_one = np.zeros(n_frames, np.int64)
+    for i in range(tid.size):
+        t = tid[i]
+        for c in range(nd):
+            S[t, c] += d[i, c]
+        G[t] += gap[i]
+        if gap[i] == 1:
+            j = f0[i] - first
+            if 0 <= j < n_frames:
+                n_one[j] += 1
+    return S, G, n_one
+
+
+@numba.njit(cache=True)
+def group_by_block(f0, edges, tid, gap, d):  # pragma: no cover - compiled
+    """Regroup steps by block of start frames, keeping their order within a block (a counting sort).
+
+    The block of a step is ``clip(searchsorted(edges, f0, side="right") - 1, 0, n_blocks - 1)``. Returns
+    bounds (n_blocks + 1), gap and d in block order, and per block the number of distinct tracks (counted as
+    changes of tid, which is non-decreasing within a block when it is non-decreasing overall).
+    """
+    n = f0.size
+    nd = d.shape[1]
+    n_blocks = edges.size - 1
+    blk = np.empty(n, np.int64)
+    bounds = np.zeros(n_blocks + 1, np.int64)
+    for i in range(n):
+        v = f0[i]
+        lo = 0
+        hi = edges.size
+        while lo < hi:  # first edge > v
+            mid = (lo + hi) >> 1
+            if edges[mid] <= v:
+                lo = mid + 1
+            else:
+                hi = mid
+        b = min(max(lo - 1, 0), n_blocks - 1)
+        blk[i] = b
+        bounds[b + 1] += 1
+    for b in range(n_blocks):
+        bounds[b + 1] += bounds[b]
+    pos = bounds[:-1].copy()
+    last = np.full(n_blocks, -1, np.int64)
+    n_distinct = np.zeros(n_blocks, np.int64)
+    gap_s = np.empty(n, np.int64)
+    d_s = np.empty((n, nd))
+    for i in range(n):
+        b = blk[i]
+        j = pos[b]
+        pos[b] += 1
+        if tid[i] != last[b]:
+            n_distinct[b] += 1
+            last[b] = tid[i]
+        gap_s[j] = gap[i]
+        for c in range(nd):
+            d_s[j, c] = d[i, c]
+    return bounds, gap_s, d_s, n_distinct
+
+
+@numba.njit(cache=True)
+def huber_block_sums(d, gap, med, cutoff):  # pragma: no cover - compiled
+    """Sum w d and w gap per axis, with Huber weights w = min(1, cutoff / |d - med|) per value."""
+    nd = d.shape[1]
+    num = np.zeros(nd)
+    den = np.zeros(nd)
+    for i in range(d.shape[0]):
+        for c in range(nd):
+            r = abs(d[i, c] - med[c])
+            w = min(1.0, cutoff / max(r, 1e-300))
+            num[c] += w * d[i, c]
+            den[c] += w * gap[i]
+    return num, den

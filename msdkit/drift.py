@@ -110,36 +110,46 @@ def _validate(tracks: pd.DataFrame, frame_interval_s: float) -> tuple[str, ...]:
 
 
 def _steps(tracks: pd.DataFrame, cols: tuple[str, ...]):
-    """Consecutive-position steps: track index, start frame, gap (frames), displacement (n, d)."""
+    """Consecutive-position steps: track index, start frame, gap (frames), displacement (n, d).
+
+    Rows with a non-finite coordinate are left out; a step joins two rows of one track with increasing
+    frames, and the track index counts the distinct tracks (with a finite row) before it.
+    """
+    from . import _msd_kernels as k
+
     t = tracks["track"].to_numpy()
-    f = tracks["frame"].to_numpy().astype(np.int64)
-    xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])
-    ok = np.all(np.isfinite(xyz), axis=1)
-    if not ok.all():
-        t, f, xyz = t[ok], f[ok], xyz[ok]
-    if not _sorted_pairs(t, f):
+    f = tracks["frame"].to_numpy().astype(np.int64, copy=False)
+    xyz = [np.ascontiguousarray(tracks[c].to_numpy(float)) for c in cols]
+    if t.dtype.kind not in "iu":
+        t = pd.factorize(t, sort=True)[0]
+    state, _ = k.scan_order(t, f)
+    if state != 0:
         order = np.lexsort((f, t))
-        t, f, xyz = t[order], f[order], xyz[order]
-    same = (t[1:] == t[:-1]) & (f[1:] > f[:-1])
-    # t is sorted: the index of each track among the distinct ids counts the changes of id before it
-    tid = np.concatenate([[0], np.cumsum(t[1:] != t[:-1])]) if t.size else np.zeros(0, np.int64)
-    return tid[:-1][same], f[:-1][same], (f[1:] - f[:-1])[same], (xyz[1:] - xyz[:-1])[same]
+        t, f, xyz = t[order], f[order], [c[order] for c in xyz]
+    c = xyz + [xyz[0]] * (3 - len(xyz))
+    return k.drift_steps(t, f, c[0], c[1], c[2], len(cols))
 
 
-def _sorted_pairs(t: np.ndarray, f: np.ndarray) -> bool:
-    """Whether rows are already in strictly increasing (track, frame) order (then no sort is needed)."""
-    if t.size < 2:
-        return True
-    if not np.all(t[1:] >= t[:-1]):
-        return False
-    return bool(np.all((t[1:] > t[:-1]) | (f[1:] > f[:-1])))
+def _kern():
+    from . import _msd_kernels
+
+    return _msd_kernels
+
+
+def _median(x: np.ndarray) -> float:
+    """numpy.median of a 1-D array of finite values, by compiled selection (no partition, no copy)."""
+    from . import _msd_kernels as k
+
+    return float(k.median(x))
 
 
 def _robust_scale(x: np.ndarray) -> float:
     """Normalised median absolute deviation from the median (Gaussian SD for Gaussian data)."""
+    from . import _msd_kernels as k
+
     if x.size == 0:
         return 0.0
-    return float(1.4826 * np.median(np.abs(x - np.median(x))))
+    return float(1.4826 * k.median_abs_deviation(x, k.median(x)))
 
 
 def _winsorise(d: np.ndarray, k: float = 6.0, return_scales: bool = False):
@@ -149,14 +159,16 @@ def _winsorise(d: np.ndarray, k: float = 6.0, return_scales: bool = False):
     unchanged (median and median absolute deviation are order statistics inside the clip bounds), so it is
     the robust SD of the clipped steps too.
     """
+    from . import _msd_kernels as kern
+
     out = d.copy()
     scales = np.zeros(d.shape[1])
     for j in range(d.shape[1]):
-        x = np.ascontiguousarray(d[:, j])
+        x = d[:, j]
         if x.size == 0:
             continue
-        m = np.median(x)
-        s = float(1.4826 * np.median(np.abs(x - m)))
+        m = float(kern.median(x))
+        s = float(1.4826 * kern.median_abs_deviation(x, m))
         scales[j] = s
         if s > 0:
             np.clip(out[:, j], m - k * s, m + k * s, out=out[:, j])
@@ -194,34 +206,28 @@ def _block_velocities(tid, f0, gap, d, dt, n_blocks, inflation, axis_scales=None
     ``inflation``, the ratio of the cluster-robust to the white-step variance of the whole-recording
     velocity (≥ 1), so correlated steps are accounted for without relying on a few clusters per block.
     """
+    from . import _msd_kernels as k
+
     lo, hi = int(f0.min()), int((f0 + gap).max())
     edges = np.linspace(lo, hi, n_blocks + 1)
-    blk = np.clip(np.searchsorted(edges, f0, side="right") - 1, 0, n_blocks - 1)
     if axis_scales is None:
-        step_var = np.array([_robust_scale(d[:, j]) ** 2 for j in range(d.shape[1])])
+        step_var = np.array([_robust_scale(np.ascontiguousarray(d[:, j])) ** 2 for j in range(d.shape[1])])
     else:
         step_var = np.asarray(axis_scales, float) ** 2
-    # steps grouped by block, keeping their order within a block (a stable sort)
-    order = np.argsort(blk.astype(np.int16 if n_blocks < 2**15 else np.int64), kind="stable")  # radix sort
-    bounds = np.searchsorted(blk[order], np.arange(n_blocks + 1))
-    tid_s, gap_s, d_s = tid[order], gap[order], d[order]
-    track_sorted = tid.size < 2 or bool(np.all(tid[1:] >= tid[:-1]))
+    # steps grouped by block, keeping their order within a block (a counting sort); tid is non-decreasing
+    # (steps come track by track from _steps), so distinct tracks per block are counted as changes of tid
+    bounds, gap_s, d_s, n_distinct = k.group_by_block(f0, edges, tid, gap, d)
     out_v, out_var = [], []
     for b in range(n_blocks):
         a, z = bounds[b], bounds[b + 1]
-        tb = tid_s[a:z]
-        n_distinct = (1 + int(np.count_nonzero(tb[1:] != tb[:-1])) if tb.size else 0) if track_sorted else (
-            np.unique(tb).size
-        )
-        if n_distinct < 3:
+        if n_distinct[b] < 3:
             continue
-        G = gap_s[a:z].astype(float)
         dd = d_s[a:z]
         s = _robust_scale(dd.ravel())
-        w = np.minimum(1.0, _HUBER_K * 3.0 * s / np.maximum(np.abs(dd - np.median(dd, 0)), 1e-300))
-        v = (w * dd).sum(0) / (w * G[:, None]).sum(0) / dt
-        out_v.append(v)
-        out_var.append(step_var / G.sum() / dt**2 * inflation)
+        med = np.array([_median(dd[:, j]) for j in range(dd.shape[1])])
+        num, den = k.huber_block_sums(dd, gap_s[a:z], med, _HUBER_K * 3.0 * s)
+        out_v.append(num / den / dt)
+        out_var.append(step_var / float(gap_s[a:z].sum()) / dt**2 * inflation)
     return np.array(out_v), np.array(out_var)
 
 
@@ -326,9 +332,11 @@ def estimate_drift(
             "no track has two positions",
         )
     d, axis_scales = _winsorise(d, return_scales=True)
-    n_tr = int(tid.max()) + 1
-    S = np.stack([np.bincount(tid, d[:, j], n_tr) for j in range(nd)], axis=1)
-    G = np.bincount(tid, gap, n_tr).astype(float)
+    n_tr = int(tid[-1]) + 1  # tid is non-decreasing
+    first = int(frames_all[0])
+    last = int(frames_all[-1])
+    frames = np.arange(first, last + 1)
+    S, G, n_one = _kern().track_sums(tid, gap, d, n_tr, f0, first, frames.size)
     v, cov, w = _linear_fit(S, G, dt)
     n_sharing = int(np.sum(w >= 0.5))
 
@@ -367,9 +375,6 @@ def estimate_drift(
     significant = bool(p_value < significance_level)
     use_path = model == "path" or (model == "auto" and significant and p_const < significance_level)
 
-    first = int(frames_all[0])
-    last = int(frames_all[-1])
-    frames = np.arange(first, last + 1)
     if use_path:
         one = gap == 1
         fi = (f0[one] - first).astype(np.int64)
@@ -390,8 +395,7 @@ def estimate_drift(
         el = (frames - first) * dt
         cum = el[:, None] * v[None, :]
         cum_se = el[:, None] * np.sqrt(np.clip(np.diag(cov), 0, None))[None, :]
-        one = gap == 1
-        n_col = np.bincount((f0[one] - first).astype(np.int64), minlength=frames.size)[: frames.size]
+        n_col = n_one
     path = _path_table(frames, cum, cum_se, n_col, dt, names)
 
     safe = bool(n_sharing >= min_tracks and n_sharing >= 0.5 * n_tr)
