@@ -77,12 +77,14 @@ SCENES: dict[str, tuple] = {
     "beads_200nm_dim": ("brownian", BEADS, 15, {"diameter_nm": 200, "photons": 500}, (0, 0), "Brownian"),
     "gel_alpha_0.5": (
         "subdiffusive", GEL, 21,
-        {"diameter_nm": 200, "photons": 2000, "motion": {"model": "fbm", "alpha": 0.5, "K_um2_s_alpha": 0.05}},
+        {"diameter_nm": 200, "photons": 2000, "motion": {"model": "fbm", "alpha": 0.5,
+                                                         "K_um2_s_alpha": 0.05}},
         (0, 0), "FBM alpha 0.5",
     ),
     "gel_alpha_0.6": (
         "subdiffusive", GEL, 22,
-        {"diameter_nm": 200, "photons": 1000, "motion": {"model": "fbm", "alpha": 0.6, "K_um2_s_alpha": 0.05}},
+        {"diameter_nm": 200, "photons": 1000, "motion": {"model": "fbm", "alpha": 0.6,
+                                                         "K_um2_s_alpha": 0.05}},
         (0, 0), "FBM alpha 0.6",
     ),
     "gel_alpha_0.7": (
@@ -224,7 +226,8 @@ def run(names: list[str], size: int, cache: Path, executor: str) -> pd.DataFrame
         r = rows[-1]
         print(
             f"{n}: alpha {r['alpha']:.3f} [{r['alpha_lo']:.3f}, {r['alpha_hi']:.3f}], flags "
-            f"{r['flags'] or '-'}; true tracks: alpha {r['truth_alpha']:.3f}, flags {r['truth_flags'] or '-'} "
+            f"{r['flags'] or '-'}; true tracks: alpha {r['truth_alpha']:.3f}, flags "
+            f"{r['truth_flags'] or '-'} "
             f"(render {t_render:.0f} s, msdkit run {t_run:.0f} s)",
             flush=True,
         )

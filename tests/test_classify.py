@@ -370,3 +370,69 @@ def test_few_tracks_are_flagged():
     assert m.numbers["n_tracks_used"] <= 5
     d = m.to_dict()
     assert d["flags"] == list(m.flags) and "msd_comparison" in d
+
+
+# ------------------------------------------------------------------------------- ensemble alpha, robustly
+# Brownian motion has alpha = 1 and fractional Brownian motion its own alpha at every length (Einstein 1905;
+# Mandelbrot & Van Ness 1968; Metzler & Klafter 2000, Phys. Rep. 339:1). The ensemble alpha pools many tracks;
+# the tolerances below are >= 3.5 times its SD at these sizes (bootstrap SD 0.02-0.03, as the Cramér-Rao bound
+# for alpha in METHODS.md, ~0.2 per track of 20 points, shrinks with the square root of the number of tracks).
+def _sample_alpha(tracks, exposure_s):
+    cls = classify_tracks(tracks, frame_interval_s=DT, exposure_s=exposure_s)
+    return sample_motion(tracks, cls, frame_interval_s=DT, exposure_s=exposure_s, n_boot=200, rng=0)
+
+
+def test_sample_alpha_of_many_short_brownian_tracks_is_unbiased():
+    # Summing per-track profile likelihoods (own scale and noise per track) gave alpha ~ 1.2 here.
+    rng = np.random.default_rng(16)
+    pos = brownian_positions(
+        600, 12, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT / 2, localization_sd_um=0.02, rng=rng
+    )
+    m = _sample_alpha(_tracks(pos), DT / 2)
+    assert abs(m.alpha - 1.0) < 0.12
+    assert "superdiffusive" not in m.flags and "subdiffusive" not in m.flags
+    # short Brownian tracks that look directed by chance do not flag the sample
+    assert "directed" not in m.flags and "confined" not in m.flags
+
+
+def test_missed_frames_do_not_fake_superdiffusion():
+    # 30 % of positions missing at random: filling them by interpolation gave alpha ~ 1.15.
+    rng = np.random.default_rng(17)
+    pos = brownian_positions(
+        300, 60, D_um2_s=0.5, frame_interval_s=DT, exposure_s=DT, localization_sd_um=0.02, rng=rng
+    )
+    tracks = _tracks(pos)
+    tracks = tracks[rng.uniform(size=len(tracks)) > 0.3].reset_index(drop=True)
+    m = _sample_alpha(tracks, DT)
+    assert abs(m.alpha - 1.0) < 0.1
+    assert "superdiffusive" not in m.flags
+    assert m.numbers["n_runs_alpha"] > m.numbers["n_tracks_alpha"]
+
+
+def test_sample_alpha_holds_for_mixed_D_lengths_and_stuck_particles():
+    # D spread 50-fold, fast particles give short tracks (as when they leave the focus), a third of the
+    # particles stuck (localisation noise only): every track's own scale and noise, one alpha = 1.
+    rng = np.random.default_rng(18)
+    D = np.exp(rng.uniform(np.log(0.1), np.log(5.0), 300))
+    lengths = np.clip((60 / np.sqrt(D)).astype(int), 8, 200)
+    pos = brownian_positions(
+        300, 200, D_um2_s=D, frame_interval_s=DT, exposure_s=DT / 2, localization_sd_um=0.03, rng=rng
+    )
+    stuck = 0.03 * rng.standard_normal((150, 200, 2))
+    tracks = positions_to_tracks(
+        np.concatenate([pos, stuck]), frame_interval_s=DT, lengths=np.concatenate([lengths, np.full(150, 80)])
+    )
+    m = _sample_alpha(tracks, DT / 2)
+    assert abs(m.alpha - 1.0) < 0.1
+    assert m.alpha_ci95[0] <= m.alpha <= m.alpha_ci95[1]
+
+
+def test_short_fbm_tracks_give_their_alpha_and_the_subdiffusive_flag():
+    rng = np.random.default_rng(19)
+    pos = fbm_positions(
+        400, 15, alpha=0.5, K_um2_s_alpha=0.5, frame_interval_s=DT, exposure_s=DT,
+        localization_sd_um=0.02, rng=rng,
+    )
+    m = _sample_alpha(_tracks(pos), DT)
+    assert abs(m.alpha - 0.5) < 0.12
+    assert "subdiffusive" in m.flags
