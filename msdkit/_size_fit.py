@@ -36,18 +36,68 @@ class _Tracks:
     n_points: np.ndarray
 
 
-def _gamma_shape_scale(D, tr: _Tracks, dt, R, n_dims):
+@dataclass(frozen=True)
+class StepLimits:
+    """What linking does to the steps it keeps (2-D tracking in the image plane).
+
+    ``max_step_um``: the joining radius; no kept step is longer. ``loss_per_um2`` (λ): a true step of squared
+    length r² is kept with probability ∝ exp(−λ r²), as when any other spot nearer than r can take the join
+    (Poisson competitors of density ρ: exp(−π ρ r²), so λ = π ρ_eff).
+    """
+
+    max_step_um: float | None = None
+    loss_per_um2: float = 0.0
+
+    @property
+    def active(self) -> bool:
+        return self.max_step_um is not None or self.loss_per_um2 > 0
+
+
+NO_LIMITS = StepLimits()
+
+
+def _step_moments(a, n_dims, limits: StepLimits):
+    """Mean and variance of one step's squared length per axis, y = |Δr|²/d, given per-axis variance a.
+
+    Without limits y ~ Gamma(d/2, 2a/d). With limits (2-D only), s = |Δr|² is exponential with mean 2a,
+    tilted by exp(−λ s) (mean μ' = 1/(1/(2a) + λ)) and truncated at s < M = max_step²; its moments are
+    those of a truncated exponential (t = M/μ'): E s = μ'(1 − t/(eᵗ − 1)), Var s = μ'²(1 − t² eᵗ/(eᵗ − 1)²).
+    """
+    if n_dims != 2 or not limits.active:
+        return a, 2 * a**2 / n_dims
+    mu = 1.0 / (1.0 / (2 * a) + limits.loss_per_um2)
+    if limits.max_step_um is None:
+        return mu / 2, mu**2 / 4
+    M = float(limits.max_step_um) ** 2
+    t = M / mu
+    small = t < 1e-2
+    ts = np.where(small, 1.0, t)
+    with np.errstate(over="ignore", invalid="ignore"):
+        em1 = np.expm1(ts)
+        frac = np.where(ts > 700, 0.0, ts / em1)
+        mean_s = np.where(small, mu * (t / 2 - t**2 / 12), mu * (1 - frac))
+        var_big = np.where(ts > 350, 1.0, 1 - frac * frac * np.exp(np.minimum(ts, 350)))
+        var_s = np.where(small, M * M / 12, mu**2 * var_big)
+    return mean_s / 2, var_s / 4
+
+
+def _gamma_shape_scale(D, tr: _Tracks, dt, R, n_dims, limits: StepLimits = NO_LIMITS):
     """Shape and scale of the Gamma law of y for true D (broadcast: D over columns, tracks over rows)."""
     a = 2 * D * dt * (1 - 2 * R) + 2 * tr.s2[:, None]
     b = 2 * D * dt * R - tr.s2[:, None]
     n = tr.n[:, None]
-    var = 2 * (n * a**2 + 2 * tr.m[:, None] * b**2) / (n_dims * n**2)
-    return a**2 / var, var / a
+    if not limits.active:
+        var = 2 * (n * a**2 + 2 * tr.m[:, None] * b**2) / (n_dims * n**2)
+        return a**2 / var, var / a
+    mean, var_step = _step_moments(a, n_dims, limits)
+    shrink = mean / a  # neighbouring steps' covariance shrinks with them (approximation)
+    var = (n * var_step + 2 * tr.m[:, None] * (2 / n_dims) * (b * shrink) ** 2) / n**2
+    return mean**2 / var, var / mean
 
 
-def _log_kernel(D_grid, tr: _Tracks, dt, R, n_dims) -> np.ndarray:
+def _log_kernel(D_grid, tr: _Tracks, dt, R, n_dims, limits: StepLimits = NO_LIMITS) -> np.ndarray:
     """Log p(y_i | D_k): rows tracks, columns grid."""
-    k, theta = _gamma_shape_scale(D_grid[None, :], tr, dt, R, n_dims)
+    k, theta = _gamma_shape_scale(D_grid[None, :], tr, dt, R, n_dims, limits)
     y = tr.y[:, None]
     return (k - 1) * np.log(y) - y / theta - k * np.log(theta) - special.gammaln(k)
 
@@ -135,7 +185,14 @@ class _Basis:
         self.B = comp @ vec
 
     def theta(self, mu, log_s, c):
-        return -0.5 * (self.u - mu) ** 2 * np.exp(-2 * log_s) + self.B @ c
+        return -0.5 * (self.u - mu) ** 2 * np.exp(-2 * _clip_log_s(log_s)) + self.B @ c
+
+
+_LOG_S_RANGE = (-12.0, 12.0)  # width of the log-normal part, ln units: far beyond any grid
+
+
+def _clip_log_s(log_s):
+    return float(np.clip(log_s, *_LOG_S_RANGE))
 
 
 def _lbfgs(fun, x0, *, max_iter=400, tol=1e-10, memory=10):
@@ -204,7 +261,7 @@ def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400)
     scale = 1.0 / np.sqrt(1.0 + strength * lam)
 
     def fun(x):
-        mu, log_s, c = x[0], x[1], x[2:] * scale
+        mu, log_s, c = x[0], _clip_log_s(x[1]), x[2:] * scale
         inv_s2 = np.exp(-2 * log_s)
         th = -0.5 * (u - mu) ** 2 * inv_s2 + B @ c
         w = _softmax(th)
@@ -214,7 +271,7 @@ def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400)
         gth = -w * (gk - 1.0)
         grad = np.empty_like(x)
         grad[0] = gth @ ((u - mu) * inv_s2)
-        grad[1] = gth @ ((u - mu) ** 2 * inv_s2)
+        grad[1] = gth @ ((u - mu) ** 2 * inv_s2) if _LOG_S_RANGE[0] < x[1] < _LOG_S_RANGE[1] else 0.0
         grad[2:] = (B.T @ gth + strength * lam * c) * scale
         return f, grad
 
@@ -297,3 +354,89 @@ def choose_and_fit(L, row_max, weight, basis: _Basis, params0, *, rng=0):
         params = _fit_penalised(L, weight, basis, lam, params)
     method.update({"regularization_strength": float(strengths[chosen]), "regularization_rule": rule})
     return _theta_of(basis, params), method
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Wrong joins: where a track changes from one particle size to another
+# ----------------------------------------------------------------------------------------------------------
+def _step_log_densities(y, s2, D_states, dt, R, n_dims, limits: StepLimits):
+    """Log density of single steps' y (rows: steps or tracks × steps broadcast) under each state D_k."""
+    a = 2 * D_states[None, :] * dt * (1 - 2 * R) + 2 * s2[:, None]
+    mean, var = _step_moments(a, n_dims, limits)
+    k = mean**2 / var
+    theta = var / mean
+    return k, theta, -k * np.log(theta) - special.gammaln(k)
+
+
+def switch_points(
+    y, track_index, s2_track, D_states, w_states, *, dt, R, n_dims, limits, p_switch, block=256
+):
+    """Find the steps at which the most probable state path of each track jumps to another particle size.
+
+    Hidden-state model of a linker's output: each step belongs to one particle (state = its D on
+    ``D_states``); at every step the track may, with probability ``p_switch``, continue with a different
+    particle whose D is drawn from ``w_states`` (a wrong join). Steps are independent given the state, each
+    with the one-step law of :func:`_step_moments` (the MA(1) correlation of neighbouring steps is ignored).
+    The most probable path is found by the Viterbi algorithm (Viterbi 1967; Rabiner 1989, Proc. IEEE 77:257);
+    the rank-one switch term makes each step O(K).
+
+    Parameters
+    ----------
+    y : array
+        Per-axis mean squared length of each valid step, grouped by track in order.
+    track_index : array of int
+        Track of each step (0 … n_tracks − 1), non-decreasing.
+    s2_track : array
+        σ² per track.
+
+    Returns
+    -------
+    bool array, one per step: True where a new state (a new particle) starts at this step.
+    """
+    y = np.asarray(y, dtype=float)
+    track_index = np.asarray(track_index)
+    out = np.zeros(y.size, dtype=bool)
+    if y.size == 0:
+        return out
+    w = np.asarray(w_states, dtype=float)
+    w = 0.98 * w / w.sum() + 0.02 / w.size
+    log_w = np.log(w)
+    log_p, log_q = np.log(p_switch), np.log1p(-p_switch)
+    starts = np.flatnonzero(np.r_[True, track_index[1:] != track_index[:-1]])
+    lengths = np.diff(np.r_[starts, y.size])
+    owners = track_index[starts]
+    order = np.argsort(lengths, kind="stable")
+    order = order[lengths[order] >= 2]
+    for b0 in range(0, order.size, block):
+        sel = order[b0 : b0 + block]
+        n_i = lengths[sel]
+        L = int(n_i.max())
+        idx = starts[sel][:, None] + np.arange(L)[None, :]
+        valid = np.arange(L)[None, :] < n_i[:, None]
+        Y = np.where(valid, y[np.minimum(idx, y.size - 1)], 1.0)
+        k, theta, c = _step_log_densities(Y[:, 0], s2_track[owners[sel]], D_states, dt, R, n_dims, limits)
+        logy = np.log(np.maximum(Y, 1e-300))
+        delta = log_w[None, :] + (k - 1) * logy[:, :1] - Y[:, :1] / theta + c
+        switched = np.zeros((L, sel.size, D_states.size), dtype=bool)
+        prev_best = np.zeros((L, sel.size), dtype=np.int64)
+        for j in range(1, L):
+            act = valid[:, j]
+            pb = np.argmax(delta, axis=1)
+            best = delta[np.arange(sel.size), pb]
+            stay = delta + log_q
+            jump = (log_p + best)[:, None] + log_w[None, :]
+            choose = jump > stay
+            new = (k - 1) * logy[:, j : j + 1] - Y[:, j : j + 1] / theta + c + np.where(choose, jump, stay)
+            delta = np.where(act[:, None], new, delta)
+            switched[j] = choose & act[:, None]
+            prev_best[j] = pb
+        state = np.argmax(delta, axis=1)
+        rows = np.arange(sel.size)
+        cut = np.zeros((sel.size, L), dtype=bool)
+        for j in range(L - 1, 0, -1):
+            act = valid[:, j]
+            sw = act & switched[j, rows, state]
+            cut[:, j] = sw
+            state = np.where(sw, prev_best[j], state)
+        out[idx[valid]] = cut[valid]
+    return out

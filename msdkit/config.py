@@ -208,6 +208,9 @@ class AnalysisConfig(BaseModel):
     max_lag_frames: Annotated[int, Field(ge=1)] | None = None
     drift_correction: bool = True
     min_track_points: Annotated[int, Field(ge=2)] | None = None
+    # shortest tracks used for the size distribution (movies: linked down to this length; its kernel takes
+    # each track's own number of steps, and short tracks are mostly the small, fast particles)
+    size_min_track_points: Annotated[int, Field(ge=2)] = 2
     seed: int = 0
 
 

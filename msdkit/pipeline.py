@@ -95,6 +95,8 @@ def analyze_tracks(
     drift_correction: bool = True,
     min_track_points: int | None = None,
     seed: int = 0,
+    sizing_tracks: pd.DataFrame | None = None,
+    step_limits: dict[str, Any] | None = None,
 ) -> AnalysisResult:
     """Analyse a track table: drift, MSD, D and alpha with intervals, motion classes, flags and sizes.
 
@@ -108,6 +110,11 @@ def analyze_tracks(
     temperature_c : float, °C
     medium : "water", {"viscosity_mpa_s": ...} or another medium accepted by
         :func:`msdkit.hydro.medium_viscosity_mpa_s`.
+    sizing_tracks : DataFrame, optional
+        Tracks for the size distribution (default: the analysed tracks); may hold shorter tracks than
+        ``min_track_points`` allows, since the size kernel takes each track's own length.
+    step_limits : dict, optional
+        ``max_step_um`` / ``step_loss_per_um2`` of the linking (:func:`msdkit.sizing.linking_step_limits`).
 
     Returns
     -------
@@ -135,6 +142,8 @@ def analyze_tracks(
     corrected = False
     if drift_correction and drift_est.worth_subtracting:
         tracks = drift.remove_drift(tracks, drift_est)
+        if sizing_tracks is not None:
+            sizing_tracks = drift.remove_drift(sizing_tracks, drift_est)
         corrected = True
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
@@ -168,7 +177,9 @@ def analyze_tracks(
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
     size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
-    dist = sizing.size_distribution(size_input, wall_distance_um=wall_distance_um, rng=seed, **radius_kw, **size_kw)
+    dist, _ = sizing.size_distribution_of_tracks(
+        tracks if sizing_tracks is None else sizing_tracks, localization_sd_um=sigma,
+        wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
@@ -262,9 +273,10 @@ def movie_to_tracks(
             if progress is not None:
                 progress(done, n_frames)
     spots = pd.concat(chunks, ignore_index=True) if chunks else schema.empty_frame(schema.SPOT_COLUMNS)
+    size_min_points = min(lnk.min_track_points, cfg.analysis.size_min_track_points)
     tracks_px, link_settings = link.link_spots(
         spots, max_step_px=lnk.max_step_px, max_gap_frames=lnk.max_gap_frames,
-        min_track_points=lnk.min_track_points, frame_interval_s=dt, acceptance_sd=lnk.acceptance_sd,
+        min_track_points=size_min_points, frame_interval_s=dt, acceptance_sd=lnk.acceptance_sd,
         frame_shape=frame_shape,
     )
     tracks = pd.DataFrame({
@@ -279,12 +291,32 @@ def movie_to_tracks(
             tracks[extra if extra == "mass" else "precision_um"] = (
                 tracks_px[extra].to_numpy(float) * (pixel if extra == "precision_px" else 1.0)
             )
+    # short tracks serve the size distribution only; ids 0.. for the tracks the other stages analyse
+    from .sizing import linking_step_limits
+
+    counts = tracks.groupby("track")["frame"].transform("size").to_numpy()
+    long_enough = counts >= lnk.min_track_points
+    old_ids = tracks["track"].to_numpy()
+    new_id = pd.Series(np.arange(np.unique(old_ids).size), index=np.unique(old_ids))
+    order = np.r_[np.unique(old_ids[long_enough]), np.unique(old_ids[~long_enough])]
+    new_id.loc[order] = np.arange(order.size)
+    tracks["track"] = new_id.loc[old_ids].to_numpy()
+    n_long = int(np.unique(old_ids[long_enough]).size)
+    link_settings = dataclasses.replace(link_settings, min_track_points=lnk.min_track_points, n_tracks=n_long,
+                                        n_spots_in_tracks=int(long_enough.sum()))
+    area_um2 = frame_shape[0] * frame_shape[1] * pixel * pixel
     used = {
         "acquisition": {"pixel_size_um": pixel, "frame_interval_s": dt, "exposure_s": exposure},
         "detection": _as_dict(settings),
         "linking": _as_dict(link_settings),
         "n_frames": int(n_frames),
         "n_spots": int(len(spots)),
+        "sizing": {
+            "min_track_points": size_min_points,
+            "n_tracks": int(np.unique(old_ids).size),
+            **linking_step_limits(max_step_um=link_settings.max_step_px * pixel,
+                                  spots_per_um2=len(spots) / max(n_frames, 1) / area_um2),
+        },
     }
     return tracks, used
 
@@ -347,13 +379,20 @@ def process_input(
         tracks, used = movie_to_tracks(input_path, cfg, progress=progress)
     acq = used["acquisition"]
     an, smp = cfg.analysis, cfg.sample
+    sizing_tracks, step_limits = None, None
+    if "sizing" in used:  # a movie: short tracks were kept for the size distribution
+        sizing_tracks = tracks
+        counts = tracks.groupby("track")["frame"].transform("size")
+        tracks = tracks[counts >= cfg.linking.min_track_points].reset_index(drop=True)
+        step_limits = {k: used["sizing"][k] for k in ("max_step_um", "step_loss_per_um2")}
     result = analyze_tracks(
         tracks, frame_interval_s=acq["frame_interval_s"], exposure_s=acq["exposure_s"],
         temperature_c=smp.temperature_c, temperature_sd_c=smp.temperature_sd_c,
         medium=smp.medium.model_dump() if hasattr(smp.medium, "model_dump") else smp.medium,
         wall_distance_um=smp.wall_distance_um, n_dims=an.n_dims, estimator=an.estimator,
         max_lag_frames=an.max_lag_frames, drift_correction=an.drift_correction,
-        min_track_points=an.min_track_points, seed=an.seed,
+        min_track_points=an.min_track_points, seed=an.seed, sizing_tracks=sizing_tracks,
+        step_limits=step_limits,
     )
     provenance = {
         "msdkit_version": __version__,

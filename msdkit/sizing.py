@@ -29,6 +29,7 @@ from scipy import signal, stats
 
 from . import hydro
 from ._size_fit import (
+    StepLimits,
     _Basis,
     _gamma_shape_scale,
     _log_kernel,
@@ -37,6 +38,7 @@ from ._size_fit import (
     _Tracks,
     _tracks_from_fits,
     choose_and_fit,
+    switch_points,
 )
 from .errors import expected_got
 
@@ -417,6 +419,8 @@ def size_distribution(
     wall_distance_um: float | None = None,
     weighting: str = "time",
     diameter_grid_nm: np.ndarray | None = None,
+    max_step_um: float | None = None,
+    step_loss_per_um2: float = 0.0,
     rng=0,
 ) -> SizeDistribution:
     """Deconvolve per-track estimates into the number, volume and intensity size distributions of a sample.
@@ -443,6 +447,13 @@ def size_distribution(
         ones. "track" counts every track once.
     diameter_grid_nm : array, nm, optional
         Log-spaced grid; by default 3 % steps spanning the per-track estimates with margins.
+    max_step_um : float, µm, optional
+        Joining radius of the linking that made the tracks (2-D): no kept step is longer, so the kernel
+        uses steps truncated there. None: no limit (tracks not from msdkit's linking, or simulated).
+    step_loss_per_um2 : float, 1/µm², default=0
+        λ of the linking's step loss: a true step of squared length r² is kept with probability ∝
+        exp(−λ r²), because a nearer spot can take the join (see :func:`linking_step_limits`). Fast
+        particles lose relatively more of their steps, so without it they read slow (large).
     rng : int, Generator or None, default=0
         Assigns tracks to the cross-validation folds.
 
@@ -487,6 +498,8 @@ def size_distribution(
         "localization_sd_um": float(np.sqrt(np.median(tr.s2))) if n_used else math.nan,
         "tracks_without_estimate": n_dropped,
         "wall_distance_um": wall_distance_um,
+        "max_step_um": max_step_um,
+        "step_loss_per_um2": float(step_loss_per_um2),
     }
 
     def to_bulk(D):
@@ -532,7 +545,9 @@ def size_distribution(
 
     # grid
     if diameter_grid_nm is None:
-        qlo, qhi = np.quantile(tr.D[pos], [0.005, 0.995])
+        # range from tracks long enough to locate sizes (1–4-step estimates scatter by factors of several)
+        informative = pos & (tr.n >= 5)
+        qlo, qhi = np.quantile(tr.D[informative if np.sum(informative) >= 20 else pos], [0.005, 0.995])
         d_small = float(hydro.stokes_einstein_diameter_nm(3.0 * qhi, **se_kw))
         d_large = float(hydro.stokes_einstein_diameter_nm(qlo / 3.0, **se_kw))
         if wall_distance_um is not None:
@@ -548,7 +563,8 @@ def size_distribution(
     if wall_distance_um is not None:
         D_grid = D_grid * np.asarray(hydro.faxen_parallel_factor(wall_distance_um * 1e3 / (grid / 2)))
 
-    logk = _log_kernel(D_grid, tr, dt, R, n_dims)
+    limits = StepLimits(max_step_um=max_step_um, loss_per_um2=float(step_loss_per_um2))
+    logk = _log_kernel(D_grid, tr, dt, R, n_dims, limits)
     row_max = logk.max(axis=1)
     L = np.exp(logk - row_max[:, None])
     weight = tr.weight / tr.weight.mean()
@@ -607,6 +623,171 @@ def size_distribution(
         table=table,
         method=method,
     )
+
+
+#: Share of the spot density that competes for a track's next position (λ = this × π × spots per µm² per
+#: frame); calibrated on simulated movies with known truth (benchmarks/movie_sizing.py).
+COMPETING_SPOT_SHARE = 0.40
+#: Rounds of cutting tracks at size changes and refitting (each uses the previous round's distribution).
+_SPLIT_ROUNDS = 2
+
+
+def linking_step_limits(*, max_step_um: float | None, spots_per_um2: float | None) -> dict[str, Any]:
+    """Kernel settings that describe what frame-to-frame linking does to the steps it keeps (2-D).
+
+    A linker joins a track end to one spot of the next frame and cannot join beyond its radius
+    ``max_step_um``. A true step of length r is also lost when another spot nearer than r takes the join;
+    with competitors scattered like a Poisson process of density ρ_c, the chance that none lies within r
+    is exp(−π ρ_c r²) (nearest-neighbour law of a Poisson process; Chandrasekhar 1943, Rev. Mod. Phys.
+    15:1, §7 — from memory). Kept steps of a particle with per-axis step variance a are then exponential in
+    r² with mean 1/(1/(2a) + λ), λ = π ρ_c, truncated at ``max_step_um``²: fast particles lose relatively
+    more, so untreated they read slow. ρ_c = COMPETING_SPOT_SHARE × the spot density, calibrated on
+    simulated movies (benchmarks/movie_sizing.py): not every spot competes, most are claimed by their own
+    predecessor.
+
+    Returns
+    -------
+    dict with ``max_step_um`` and ``step_loss_per_um2`` for :func:`size_distribution`.
+    """
+    lam = 0.0
+    if spots_per_um2 is not None and np.isfinite(spots_per_um2) and spots_per_um2 > 0:
+        lam = COMPETING_SPOT_SHARE * math.pi * float(spots_per_um2)
+    ok = max_step_um is not None and np.isfinite(max_step_um) and max_step_um > 0
+    return {"max_step_um": float(max_step_um) if ok else None, "step_loss_per_um2": lam}
+
+
+def _segment_table(tracks, per_track, cut_at_position, order_cols):
+    """Tracks cut into segments: a new segment starts at each flagged position (shared with the old one)."""
+    df = tracks
+    new_track = np.r_[True, df["track"].to_numpy()[1:] != df["track"].to_numpy()[:-1]]
+    seg = np.cumsum(new_track | cut_at_position) - 1
+    out = df[order_cols].copy()
+    out["source_track"] = df["track"].to_numpy()
+    out["track"] = seg
+    dup = out[cut_at_position].copy()
+    dup["track"] = dup["track"] - 1
+    both = pd.concat([out, dup], ignore_index=True).sort_values(["track", "frame"], kind="stable")
+    return both.reset_index(drop=True)
+
+
+def size_distribution_of_tracks(
+    tracks: pd.DataFrame,
+    *,
+    temperature_c: float,
+    viscosity_mpa_s: float,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    localization_sd_um=None,
+    wall_distance_um: float | None = None,
+    weighting: str = "time",
+    max_step_um: float | None = None,
+    step_loss_per_um2: float = 0.0,
+    split_wrong_joins: bool = True,
+    switch_probability: float = 0.05,
+    rng=0,
+) -> tuple[SizeDistribution, pd.DataFrame]:
+    """Size distribution of a sample straight from its tracks, robust to wrong joins between particles.
+
+    1. :func:`lag1_track_estimates` per track and :func:`size_distribution` of them.
+    2. When ``split_wrong_joins``: each track is cut where its most probable sequence of particle sizes
+       changes (:func:`msdkit._size_fit.switch_points`, a hidden-state model in which a linker continues a
+       track with another particle with probability ``switch_probability`` per step, the new particle's size
+       drawn from the distribution of step 1), and the distribution is fitted again on the pieces. Repeated
+       once with the refined distribution. A track that holds a small and a large particle otherwise counts
+       as one particle of intermediate size and merges the modes of a mixture. In a sample of one size a
+       change of particle changes nothing and no cut is made.
+
+    Parameters
+    ----------
+    tracks : DataFrame
+        Columns track, frame, x_um, y_um. Use every track of two or more positions: short tracks are mostly
+        small, fast particles, and the kernel takes each track's own number of steps.
+    max_step_um, step_loss_per_um2 : see :func:`size_distribution` and :func:`linking_step_limits`.
+    Other parameters: as :func:`size_distribution` and :func:`lag1_track_estimates`.
+
+    Returns
+    -------
+    (SizeDistribution, DataFrame)
+        The distribution and the per-track table of :func:`lag1_track_estimates` (whole tracks, for
+        per-track sizes). ``method`` records ``n_segments`` and ``n_cuts``.
+    """
+    kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+    dist_kw = dict(
+        temperature_c=temperature_c,
+        viscosity_mpa_s=viscosity_mpa_s,
+        wall_distance_um=wall_distance_um,
+        weighting=weighting,
+        max_step_um=max_step_um,
+        step_loss_per_um2=step_loss_per_um2,
+        rng=rng,
+        **kw,
+    )
+    per_track = lag1_track_estimates(tracks, localization_sd_um=localization_sd_um, **kw)
+    dist = size_distribution(per_track, **dist_kw)
+    method_extra: dict[str, Any] = {"split_wrong_joins": bool(split_wrong_joins), "n_cuts": 0}
+    if not split_wrong_joins or dist.status != "ok" or len(dist.modes_nm) == 0:
+        return _with_method(dist, method_extra), per_track
+    if not 0 < switch_probability < 0.5:
+        raise ValueError(
+            expected_got("switch_probability", "between 0 and 0.5", switch_probability, "Use about 0.05.")
+        )
+    cols = ["x_um", "y_um", "z_um"][:n_dims]
+    df = tracks.sort_values(["track", "frame"], kind="stable").reset_index(drop=True)
+    ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
+    pos = df[cols].to_numpy(float)
+    frame = df["frame"].to_numpy(np.int64)
+    inc = np.diff(pos, axis=0)
+    step_ok = (inv[1:] == inv[:-1]) & (np.diff(frame) == 1) & np.all(np.isfinite(inc), axis=1)
+    y = np.sum(inc**2, axis=1)[step_ok] / n_dims
+    step_start = np.flatnonzero(step_ok)  # position index where each valid step starts
+    sigma = per_track.set_index("track")["sigma_um"].reindex(ids).to_numpy(float)
+    s2 = np.nan_to_num(sigma, nan=0.0) ** 2
+    dt = float(frame_interval_s)
+    R = blur_coefficient(dt, exposure_s)
+    limits = StepLimits(max_step_um=max_step_um, loss_per_um2=float(step_loss_per_um2))
+    sigma_by_source = pd.Series(sigma, index=ids)
+    n_cuts_prev = -1
+    for _ in range(_SPLIT_ROUNDS):
+        table = dist.table
+        D_all = table["D_um2_s"].to_numpy(float)
+        w_all = table["number_fraction"].to_numpy(float)
+        n_coarse = int(np.ceil(D_all.size / 2))
+        D_states = np.array([D_all[2 * i : 2 * i + 2].mean() for i in range(n_coarse)])
+        w_states = np.array([w_all[2 * i : 2 * i + 2].sum() for i in range(n_coarse)])
+        cut_step = switch_points(
+            y,
+            inv[:-1][step_ok],
+            s2,
+            D_states,
+            w_states,
+            dt=dt,
+            R=R,
+            n_dims=n_dims,
+            limits=limits,
+            p_switch=switch_probability,
+        )
+        n_cuts = int(cut_step.sum())
+        if n_cuts == 0 or n_cuts == n_cuts_prev:
+            break
+        cut_at_position = np.zeros(len(df), dtype=bool)
+        cut_at_position[step_start[cut_step]] = True
+        seg = _segment_table(df, per_track, cut_at_position, ["track", "frame", *cols])
+        seg_sigma = seg.groupby("track")["source_track"].first().map(sigma_by_source)
+        seg_est = lag1_track_estimates(seg, localization_sd_um=seg_sigma, **kw)
+        dist = size_distribution(seg_est, **dist_kw)
+        method_extra.update({"n_cuts": n_cuts, "n_segments": int(len(seg_est))})
+        n_cuts_prev = n_cuts
+        if dist.status != "ok":
+            break
+    method_extra["switch_probability"] = float(switch_probability)
+    return _with_method(dist, method_extra), per_track
+
+
+def _with_method(dist: SizeDistribution, extra: dict[str, Any]) -> SizeDistribution:
+    import dataclasses
+
+    return dataclasses.replace(dist, method={**dist.method, **extra})
 
 
 def track_sizes_nm(

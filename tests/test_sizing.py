@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 from scipy import special, stats
 
-from msdkit import hydro, sizing
+from msdkit import _size_fit, hydro, sizing
 from msdkit.simulate import brownian_positions, positions_to_tracks
 
 DT, EXPOSURE, SIGMA, T_C = 1 / 30, 0.015, 0.025, 25.0  # 30 fps, 15 ms exposure, 25 nm localisation error
@@ -251,3 +251,127 @@ def test_lag1_estimates_reject_tracks_without_positions_in_um():
         sizing.lag1_track_estimates(
             pd.DataFrame({"track": [0], "frame": [0], "x_px": [1.0]}), frame_interval_s=DT, exposure_s=0.0
         )
+
+
+# ----------------------------------------------------------------------------------------------------------
+# Tracks from a linker: lost long steps and wrong joins
+# ----------------------------------------------------------------------------------------------------------
+@pytest.mark.parametrize(("a", "lam", "max_step"), [(0.35, 0.15, 1.757), (0.12, 0.3, 1.0), (2.0, 0.1, 0.5)])
+def test_step_moments_under_linking_loss_match_a_truncated_exponential(a, lam, max_step):
+    # 2-D squared step length s of per-axis variance a is exponential with mean 2a (χ² with 2 degrees of
+    # freedom); tilted by exp(−λ s) and cut at s < M it is a truncated exponential: reference values from
+    # scipy.stats.truncexpon (general-purpose reference library).
+    mu = 1.0 / (1.0 / (2 * a) + lam)
+    ref = stats.truncexpon(b=max_step**2 / mu, scale=mu)
+    mean, var = _size_fit._step_moments(np.array(a), 2, _size_fit.StepLimits(max_step, lam))
+    assert float(mean) == pytest.approx(ref.mean() / 2, rel=1e-9)
+    assert float(var) == pytest.approx(ref.var() / 4, rel=1e-7)
+    # no limits: per-axis mean square of one 2-D Gaussian step is Gamma(1, a) (χ² algebra)
+    mean0, var0 = _size_fit._step_moments(np.array(a), 2, _size_fit.NO_LIMITS)
+    assert (float(mean0), float(var0)) == pytest.approx((a, a * a))
+
+
+def _thin_like_a_linker(tracks, *, lam, max_step_um, rng):
+    """Drop each step with probability 1 − exp(−λ r²) (and every step longer than max_step_um); a dropped step
+    ends the track there and the particle goes on as a new track."""
+    g = np.random.default_rng(rng)
+    t = tracks.sort_values(["track", "frame"]).reset_index(drop=True)
+    same = np.r_[False, t["track"].to_numpy()[1:] == t["track"].to_numpy()[:-1]]
+    r2 = np.r_[0.0, np.diff(t["x_um"]) ** 2 + np.diff(t["y_um"]) ** 2]
+    kept = (g.random(len(t)) < np.exp(-lam * r2)) & (r2 < max_step_um**2)
+    t["track"] = np.cumsum(~(same & kept))
+    return t
+
+
+def test_kernel_with_the_linking_step_loss_sizes_a_mixture_whose_long_steps_were_lost():
+    # Truth: 80 + 250 nm (Stokes–Einstein, water 25 °C). Steps kept with probability exp(−λ r²) for r < R
+    # (nearest-competitor law of a Poisson process of spots). Without the loss in the kernel fast particles
+    # read slow: E s falls from 2a to about 1/(1/(2a) + λ) (−24 % at 80 nm here); with it both modes are
+    # right.
+    g = np.random.default_rng(31)
+    truth = np.where(g.random(700) < 0.5, 80.0, 250.0)
+    tracks = _thin_like_a_linker(simulate(truth, rng=32, steps=(20, 40)), lam=0.3, max_step_um=1.5, rng=33)
+    est = sizing.lag1_track_estimates(
+        tracks, frame_interval_s=DT, exposure_s=EXPOSURE, localization_sd_um=SIGMA
+    )
+    plain = sizing.size_distribution(est, **KW)
+    aware = sizing.size_distribution(est, max_step_um=1.5, step_loss_per_um2=0.3, **KW)
+    assert min(plain.modes_nm) > 92.0  # ~ +30 % expected
+    assert len(aware.modes_nm) == 2
+    assert aware.modes_nm[0] == pytest.approx(80.0, rel=0.1)
+    assert aware.modes_nm[1] == pytest.approx(250.0, rel=0.1)
+
+
+def _joined_tracks(diameters_nm, *, rng, pieces=(2, 3), steps=(8, 25)):
+    """Tracks that a linker built from several particles: pieces of different particles joined end to end,
+    the join a step of the new particle (a wrong join). Returns tracks and the true diameter per position."""
+    g = np.random.default_rng(rng)
+    n_pieces = int(len(diameters_nm))
+    raw = simulate(diameters_nm, rng=g, steps=steps)
+    raw = raw.sort_values(["track", "frame"]).reset_index(drop=True)
+    d_of_piece = np.asarray(diameters_nm, float)
+    owner = np.zeros(n_pieces, dtype=int)
+    k, j = 0, 0
+    while j < n_pieces:
+        m = int(g.integers(pieces[0], pieces[1] + 1))
+        owner[j : j + m] = k
+        j, k = j + m, k + 1
+    rows = []
+    for t in range(k):
+        xs, ys, ds = [], [], []
+        for p in np.flatnonzero(owner == t):
+            piece = raw[raw["track"] == p]
+            x, y = piece["x_um"].to_numpy(), piece["y_um"].to_numpy()
+            if xs:
+                step = g.normal(0.0, np.sqrt(2 * float(D_of(d_of_piece[p])) * DT), 2)
+                x = x - x[0] + xs[-1][-1] + step[0]
+                y = y - y[0] + ys[-1][-1] + step[1]
+            xs.append(x)
+            ys.append(y)
+            ds.append(np.full(x.size, d_of_piece[p]))
+        x, y, d = np.concatenate(xs), np.concatenate(ys), np.concatenate(ds)
+        rows.append(pd.DataFrame({"track": t, "frame": np.arange(x.size), "x_um": x, "y_um": y, "d_true": d}))
+    out = pd.concat(rows, ignore_index=True)
+    return out[["track", "frame", "x_um", "y_um"]], out["d_true"].to_numpy()
+
+
+def test_tracks_joined_from_an_80_and_a_250_nm_particle_are_cut_and_the_mixture_separates():
+    # Known truth: pieces of 80 and 250 nm particles (equal numbers) joined 2–3 per track. Time-weighted
+    # number fractions count positions, so the true 80 nm share is that of the positions.
+    g = np.random.default_rng(41)
+    d = np.where(g.random(600) < 0.5, 80.0, 250.0)
+    tracks, d_pos = _joined_tracks(d, rng=42)
+    kw = dict(localization_sd_um=SIGMA, **KW)
+    whole, _ = sizing.size_distribution_of_tracks(tracks, split_wrong_joins=False, **kw)
+    split, per_track = sizing.size_distribution_of_tracks(tracks, **kw)
+    assert len(per_track) == tracks["track"].nunique()
+    assert split.method["n_cuts"] > 0
+    assert len(split.modes_nm) == 2
+    assert split.modes_nm[0] == pytest.approx(80.0, rel=0.1)
+    assert split.modes_nm[1] == pytest.approx(250.0, rel=0.1)
+    # binomial SD of the position share is < 0.03 (pieces are the sampling unit); target as the benchmark
+    assert split.number.mode_fractions[0] == pytest.approx(np.mean(d_pos == 80.0), abs=0.1)
+    # the whole tracks mix sizes: the modes move towards each other (or merge)
+    ratio_split = split.modes_nm[1] / split.modes_nm[0]
+    assert len(whole.modes_nm) == 1 or whole.modes_nm[1] / whole.modes_nm[0] < ratio_split
+
+
+def test_wrong_joins_between_identical_particles_leave_a_monodisperse_sample_narrow():
+    # Known truth: 100 nm pieces joined 2–3 per track; a join between identical particles changes nothing.
+    tracks, _ = _joined_tracks(np.full(600, 100.0), rng=43)
+    dist, _ = sizing.size_distribution_of_tracks(tracks, localization_sd_um=SIGMA, **KW)
+    # D50 SE ≈ 1/√(Σ N_s) < 1 %; span: see the monodisperse test above
+    assert dist.d50_nm == pytest.approx(100.0, rel=0.03)
+    assert dist.span < 0.3
+    assert len(dist.modes_nm) == 1
+
+
+def test_linking_step_limits_follow_the_spot_density():
+    # λ = share × π ρ (nearest-neighbour law of a Poisson process, Chandrasekhar 1943 — from memory)
+    lim = sizing.linking_step_limits(max_step_um=1.7, spots_per_um2=0.1)
+    assert lim["max_step_um"] == 1.7
+    assert lim["step_loss_per_um2"] == pytest.approx(sizing.COMPETING_SPOT_SHARE * math.pi * 0.1)
+    assert sizing.linking_step_limits(max_step_um=None, spots_per_um2=None) == {
+        "max_step_um": None,
+        "step_loss_per_um2": 0.0,
+    }
