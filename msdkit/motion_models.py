@@ -233,6 +233,25 @@ def frequency_weights(n_steps: int) -> np.ndarray:
     return w
 
 
+def _periodograms_with_free_mean(steps: np.ndarray, taper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`periodograms` of the steps and of the steps minus their mean, from one set of transforms.
+
+    The transform is linear, so that of (steps − mean) is F − mean · H with H the transform of the taper.
+    """
+    T, N, d = steps.shape
+    H = np.fft.rfft(taper)
+    P = np.empty((T, N // 2 + 1))
+    Pd = np.empty((T, N // 2 + 1))
+    chunk = max(1, 65536 // max(N * d, 1))
+    for a in range(0, T, chunk):
+        blk = steps[a : a + chunk].transpose(0, 2, 1)
+        F = np.fft.rfft(blk * taper, axis=-1)
+        P[a : a + chunk] = np.sum(F.real**2 + F.imag**2, axis=1)
+        F -= blk.mean(axis=-1, keepdims=True) * H
+        Pd[a : a + chunk] = np.sum(F.real**2 + F.imag**2, axis=1)
+    return P, Pd
+
+
 def periodograms(steps: np.ndarray, taper: np.ndarray | None = None) -> np.ndarray:
     """Periodogram of each track's steps summed over axes: (n_tracks, N, n_axes) → (n_tracks, N//2 + 1)."""
     T, N, d = steps.shape
@@ -318,27 +337,31 @@ def _profile_noise(ll: np.ndarray):
     return best, 0.01 * np.sinh(u), idx
 
 
-def _loglik_grid(
-    P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int, drop_zero: bool = False
-):
-    """Profile (scale-maximised) Whittle log-likelihood on shapes × noise ratios.
+#: Tracks per chunk of the likelihood grid: a chunk's (tracks x shapes x noise ratios) arrays stay near the
+#: CPU caches instead of filling memory with the whole grid.
+_GRID_CHUNK_ELEMENTS = 1 << 18
 
-    P: (T, F) periodograms summed over axes; shapes: (S, F). Returns ll (T, S, R) and scale (T, S, R).
-    """
+
+def _grid_terms(w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, drop_zero: bool):
+    """Spectra on shapes × noise ratios: validity (S, R), log-determinant (S, R) and weights / spectrum."""
     spec = shapes[:, None, :] + NOISE_RATIO_GRID[None, :, None] * noise[None, None, :]  # (S, R, F)
     # (S, R): a negative noise ratio may remove at most half of the signal spectrum at any frequency (a
     # spectrum near zero would let one small periodogram value dominate the likelihood)
     valid = np.all(spec >= 0.5 * shapes[:, None, :], axis=-1)
     spec = np.where(valid[..., None], spec, 1.0)
-    W = w.sum()
     wq = w.copy()
     if drop_zero:
         wq[0] = 0.0
     logdet = np.log(spec) @ w  # (S, R)
     Q = wq[None, None, :] / spec  # (S, R, F)
-    S, R, F = spec.shape
+    return valid, logdet, Q
+
+
+def _loglik_chunk(P, W, valid, logdet, Qt, n_axes):
+    """Log-likelihood and scale (T, S, R) of the tracks in P from the terms of :func:`_grid_terms`."""
+    S, R = logdet.shape
     # in place on the (T, S, R) arrays, in the order -n_axes · (logdet + W log(scale) + W)
-    scale = (P @ Q.reshape(S * R, F).T).reshape(P.shape[0], S, R)
+    scale = (P @ Qt).reshape(P.shape[0], S, R)
     scale /= n_axes * W
     np.maximum(scale, 1e-300, out=scale)
     ll = np.log(scale)
@@ -349,6 +372,37 @@ def _loglik_grid(
     if not valid.all():
         ll[:, ~valid] = -np.inf
     return ll, scale
+
+
+def _profile_grid(
+    P: np.ndarray, w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, n_axes: int, drop_zero: bool = False
+):
+    """Profile Whittle log-likelihood on shapes × noise ratios, maximised over the noise ratio.
+
+    P: (T, F) periodograms summed over axes; shapes: (S, F). For each track, shape and noise ratio the
+    scale is profiled out in closed form, ll = -n_axes (log det + W log(scale) + W); the grid is evaluated a
+    cache-sized chunk of tracks at a time and only each track's best noise ratio is kept.
+
+    Returns, each of shape (T, S): the refined profile maximum and noise ratio (:func:`_profile_noise`), the
+    grid index of the best noise ratio, and the scale there.
+    """
+    valid, logdet, Q = _grid_terms(w, shapes, noise, drop_zero)
+    S, R, F = Q.shape
+    Qt = np.ascontiguousarray(Q.reshape(S * R, F).T)
+    W = w.sum()
+    T = P.shape[0]
+    best = np.empty((T, S))
+    ratio = np.empty((T, S))
+    idx = np.empty((T, S), np.int64)
+    scale = np.empty((T, S))
+    step = max(1, _GRID_CHUNK_ELEMENTS // (S * R))
+    for a in range(0, T, step):
+        z = min(T, a + step)
+        ll, sc = _loglik_chunk(P[a:z], W, valid, logdet, Qt, n_axes)
+        best[a:z], ratio[a:z], i = _profile_noise(ll)
+        idx[a:z] = i
+        scale[a:z] = np.take_along_axis(sc, i[..., None], -1)[..., 0]
+    return best, ratio, idx, scale
 
 
 @dataclass(frozen=True)
@@ -394,13 +448,11 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     """
     T, N, n_axes = steps.shape
     bank = _bank(N, round(float(exposure_ratio), 4))
-    P = periodograms(steps, bank.taper)
-    Pd = periodograms(steps - steps.mean(axis=1, keepdims=True), bank.taper)  # for the free-mean model
+    P, Pd = _periodograms_with_free_mean(steps, bank.taper)  # Pd: for the free-mean (directed) model
     w = bank.weights
     A = ALPHA_GRID.size
 
-    ll_f, sc_f = _loglik_grid(P, w, bank.fbm, bank.noise, n_axes)  # (T, A, R)
-    prof, lr_f, _ = _profile_noise(ll_f)  # (T, A)
+    prof, _, ir_f, sc_f = _profile_grid(P, w, bank.fbm, bank.noise, n_axes)  # (T, A)
     ia = np.argmax(prof, axis=1)
     rows = np.arange(T)
     inner = (ia >= 1) & (ia <= A - 2)
@@ -413,16 +465,14 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     ll_fbm = np.where(inner, val, y1)
     lo, hi = _interval(prof, ll_fbm - ci_drop)
     i1 = int(np.argmin(np.abs(ALPHA_GRID - 1.0)))
-    ll_brown_r = ll_f[:, i1, :]
-    ll_brown, _, ib = _profile_noise(ll_brown_r)
-    ir = np.argmax(ll_f[rows, ia, :], axis=1)
-    fbm_scale = sc_f[rows, ia, ir]
+    ll_brown = prof[:, i1]
+    ir = ir_f[rows, ia]
+    fbm_scale = sc_f[rows, ia]
     fbm_noise = fbm_scale * NOISE_RATIO_GRID[ir]
-    brown_scale = sc_f[rows, i1, ib]
-    brown_noise = brown_scale * NOISE_RATIO_GRID[ib]
+    brown_scale = sc_f[:, i1]
+    brown_noise = brown_scale * NOISE_RATIO_GRID[ir_f[:, i1]]
 
-    ll_c, sc_c = _loglik_grid(P, w, bank.conf, bank.noise, n_axes)  # (T, C, R)
-    cprof, _, _ = _profile_noise(ll_c)
+    cprof, _, ir_c, sc_c = _profile_grid(P, w, bank.conf, bank.noise, n_axes)  # (T, C)
     ic = np.argmax(cprof, axis=1)
     C = bank.tau.size
     cinner = (ic >= 1) & (ic <= C - 2)
@@ -433,8 +483,8 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     ll_conf = np.where(cinner, cval, c1)
     ltau = np.log(bank.tau)
     conf_tau = np.exp(ltau[ic] + np.where(cinner, coff * (ltau[1] - ltau[0]), 0.0))
-    icr = np.argmax(ll_c[rows, ic, :], axis=1)
-    conf_plateau = sc_c[rows, ic, icr]
+    icr = ir_c[rows, ic]
+    conf_plateau = sc_c[rows, ic]
     conf_noise = conf_plateau * NOISE_RATIO_GRID[icr]
 
     # immobile: noise only
@@ -444,10 +494,10 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     ll_imm = -n_axes * (np.log(spec_n) @ w + W * np.log(sc_n) + W)
 
     # directed: Brownian steps with a free mean (zero frequency left out of the fit)
-    ll_d, sc_d = _loglik_grid(Pd, w, bank.fbm[i1 : i1 + 1], bank.noise, n_axes, drop_zero=True)
-    ll_dir, _, idr = _profile_noise(ll_d[:, 0, :])
-    dir_scale = sc_d[rows, 0, idr]
-    dir_noise = dir_scale * NOISE_RATIO_GRID[idr]
+    ll_d, _, idr, sc_d = _profile_grid(Pd, w, bank.fbm[i1 : i1 + 1], bank.noise, n_axes, drop_zero=True)
+    ll_dir = ll_d[:, 0]
+    dir_scale = sc_d[:, 0]
+    dir_noise = dir_scale * NOISE_RATIO_GRID[idr[:, 0]]
 
     return StepFits(
         ll_immobile=ll_imm,
@@ -518,11 +568,11 @@ def amplitude_at_alpha(steps: np.ndarray, *, exposure_ratio: float, alpha: float
     w = bank.weights
     W = w.sum()
     shape = expected_periodogram(_blurred_power(np.arange(N + 1, dtype=float), float(alpha), e), bank.taper)
-    ll, _ = _loglik_grid(P, w, shape[None, :], bank.noise, n_axes)
-    _, r, _ = _profile_noise(ll[:, 0, :])
+    _, r, i_r, _ = _profile_grid(P, w, shape[None, :], bank.noise, n_axes)
+    r, i_r = r[:, 0], i_r[:, 0]
     spec = shape[None, :] + r[:, None] * bank.noise[None, :]  # (T, F)
     bad = np.any(spec < 0.5 * shape[None, :], axis=1)
-    r = np.where(bad, NOISE_RATIO_GRID[np.argmax(ll[:, 0, :], axis=1)], r)
+    r = np.where(bad, NOISE_RATIO_GRID[i_r], r)
     spec = np.maximum(shape[None, :] + r[:, None] * bank.noise[None, :], 1e-300)
     A = np.maximum(np.sum(w[None, :] * P / spec, axis=1) / (n_axes * W), 1e-300)
     S = A[:, None] * spec

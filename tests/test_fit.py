@@ -279,3 +279,61 @@ def test_sample_localisation_error_holds_for_subdiffusion_and_keeps_track_alpha_
     assert abs(s.sigma_um - 0.05) < 0.03
     f = fit_tracks(t, frame_interval_s=0.02, exposure_s=0.0, sigma_um=s.sigma_um)
     assert abs(f["alpha"].median() - 0.5) < 0.06
+
+
+# ------------------------------------------------------ step-model likelihood: fast paths against references
+
+def _full_grid_reference(P, w, shapes, noise, n_axes, drop_zero=False):
+    """The profile Whittle log-likelihood of every track on the whole (shape, noise ratio) grid, written out
+    from its definition (Sykulski et al. 2019): ll = -n_axes (sum_f w_f log S_f + W log(scale) + W) with the
+    closed-form scale = sum_f w_f P_f / S_f / (n_axes W), S = shape + r noise, and the same validity rule."""
+    from msdkit.motion_models import NOISE_RATIO_GRID
+
+    W = w.sum()
+    wq = w.copy()
+    if drop_zero:
+        wq[0] = 0.0
+    T, S, R = P.shape[0], shapes.shape[0], NOISE_RATIO_GRID.size
+    ll = np.full((T, S, R), -np.inf)
+    scale = np.zeros((T, S, R))
+    for s in range(S):
+        for r, ratio in enumerate(NOISE_RATIO_GRID):
+            spec = shapes[s] + ratio * noise
+            sc = np.maximum(P @ (wq / spec) / (n_axes * W), 1e-300)
+            scale[:, s, r] = sc
+            if np.all(spec >= 0.5 * shapes[s]):
+                ll[:, s, r] = -n_axes * (np.log(spec) @ w + W * np.log(sc) + W)
+    return ll, scale
+
+
+def test_chunked_likelihood_grid_equals_the_full_grid_reference():
+    from msdkit import motion_models as mm
+
+    rng = np.random.default_rng(3)
+    steps = rng.normal(size=(700, 40, 2)) * 0.1 + rng.normal(size=(700, 1, 2)) * 0.05
+    bank = mm._bank(40, 0.4)
+    P = mm.periodograms(steps, bank.taper)
+    for shapes in (bank.fbm, bank.conf, bank.fbm[18:19]):
+        for drop_zero in (False, True):
+            ll, sc = _full_grid_reference(P, bank.weights, shapes, bank.noise, 2, drop_zero)
+            best, ratio, idx, scale = mm._profile_grid(P, bank.weights, shapes, bank.noise, 2, drop_zero)
+            ref_best, ref_ratio, ref_idx = mm._profile_noise(ll)
+            np.testing.assert_array_equal(idx, ref_idx)
+            np.testing.assert_allclose(best, ref_best, rtol=1e-12)
+            # the refined ratio is a parabola's vertex through three nearly equal values: looser
+            np.testing.assert_allclose(ratio, ref_ratio, rtol=1e-6, atol=1e-12)
+            ref_scale = np.take_along_axis(sc, ref_idx[..., None], -1)[..., 0]
+            np.testing.assert_allclose(scale, ref_scale, rtol=1e-12)
+
+
+def test_periodograms_with_a_free_mean_equal_those_of_the_centred_steps():
+    # Reference: msdkit.motion_models.periodograms of the steps minus their mean, transformed separately.
+    from msdkit import motion_models as mm
+
+    rng = np.random.default_rng(4)
+    steps = rng.normal(size=(300, 57, 2)) + 3.0  # a large common mean (directed motion)
+    taper = mm.split_cosine_taper(57)
+    P, Pd = mm._periodograms_with_free_mean(steps, taper)
+    np.testing.assert_allclose(P, mm.periodograms(steps, taper), rtol=1e-13)
+    ref = mm.periodograms(steps - steps.mean(axis=1, keepdims=True), taper)
+    np.testing.assert_allclose(Pd, ref, rtol=1e-9, atol=1e-12 * ref.max())
