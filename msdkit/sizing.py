@@ -138,8 +138,17 @@ def lag1_track_estimates(
                 "Convert positions to µm first.",
             )
         )
-    df = tracks.sort_values(["track", "frame"], kind="stable")
-    ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
+    from ._msd_kernels import scan_order
+
+    t_all, f_all = tracks["track"].to_numpy(), tracks["frame"].to_numpy()
+    in_order = t_all.size > 0 and t_all.dtype.kind in "iu" and f_all.dtype.kind in "iu" and (
+        scan_order(t_all, f_all)[0] == 0)
+    df = tracks if in_order else tracks.sort_values(["track", "frame"], kind="stable")
+    if in_order:  # already sorted by (track, frame): ids and indices from the runs, as np.unique gives them
+        new_track = np.concatenate([[True], t_all[1:] != t_all[:-1]])
+        ids, inv = t_all[new_track], np.cumsum(new_track) - 1
+    else:
+        ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
     n_tr = ids.size
     frame = df["frame"].to_numpy(np.int64)
     pos = df[cols].to_numpy(float)
