@@ -52,6 +52,20 @@ class InputOutcome:
     extra: dict[str, Any] = field(default_factory=dict)
 
 
+def _in_track_frame_order(tracks: pd.DataFrame) -> pd.DataFrame:
+    """Return the table sorted by track then frame, with a fresh RangeIndex.
+
+    Tables from msdkit's readers are in that order already: one compiled pass confirms it and the sort (a
+    full copy of the table) is skipped; under pandas' copy-on-write the caller's table is never modified.
+    """
+    from . import _msd_kernels as k
+
+    t, f = tracks["track"].to_numpy(), tracks["frame"].to_numpy()
+    if t.size and t.dtype.kind in "iu" and f.dtype.kind in "iu" and k.scan_order(t, f)[0] == 0:
+        return tracks.reset_index(drop=True)
+    return tracks.sort_values(["track", "frame"], kind="stable").reset_index(drop=True)
+
+
 def _finite_or_none(value):
     if value is None:
         return None
@@ -126,7 +140,7 @@ def analyze_tracks(
         raise InputError(expected_got("frame_interval_s", "> 0", frame_interval_s,
                                       "Set acquisition.frame_interval_s in the config."))
     exposure_s = frame_interval_s if exposure_s is None else float(exposure_s)
-    tracks = tracks.sort_values(["track", "frame"], kind="stable").reset_index(drop=True)
+    tracks = _in_track_frame_order(tracks)
     tracks["time_s"] = tracks["frame"].to_numpy(float) * frame_interval_s
     if min_track_points:
         counts = tracks.groupby("track")["frame"].transform("size")
@@ -176,10 +190,11 @@ def analyze_tracks(
     sigma = getattr(sample_fit, "D_sigma_um", getattr(sample_fit, "sigma_um", None))
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
-    size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
-    dist, _ = sizing.size_distribution_of_tracks(
+    dist, size_input = sizing.size_distribution_of_tracks(
         tracks if sizing_tracks is None else sizing_tracks, localization_sd_um=sigma,
         wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw)
+    if sizing_tracks is not None:  # the per-track table above covers the sizing tracks: redo it for ours
+        size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
