@@ -524,3 +524,26 @@ def huber_block_sums(d, gap, med, cutoff):  # pragma: no cover - compiled
             num[c] += w * d[i, c]
             den[c] += w * gap[i]
     return num, den
+
+
+# ------------------------------------------------------------------------------------ sample-level MSD
+@numba.njit(cache=True, fastmath=True)
+def lag_square_sums(Q, n_lags):  # pragma: no cover - compiled
+    """Sum over i and axes of (Q[g, i + n] - Q[g, i])^2 for lags n = 1..n_lags, per track g: (G, n_lags).
+
+    Q is (G, L, n_axes) positions of equal-length tracks without gaps; n_lags < L.
+    """
+    G, L, nd = Q.shape
+    out = np.zeros((G, n_lags))
+    x = np.empty(L)
+    for g in range(G):
+        for d in range(nd):
+            for i in range(L):
+                x[i] = Q[g, i, d]
+            for n in range(1, n_lags + 1):
+                s = 0.0
+                for i in range(L - n):
+                    v = x[i + n] - x[i]
+                    s += v * v
+                out[g, n - 1] += s
+    return out
