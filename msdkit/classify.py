@@ -901,16 +901,16 @@ def sample_motion(
             continue
         Q = np.stack([pos[i] for i in gi])
         Q = Q - Q[:, :1]
-        for j, n in enumerate(lags):
-            if n >= L:
-                break
-            dq = Q[:, n:] - Q[:, :-n]
-            ta_sum[gi, j] = np.einsum("gij,gij->g", dq, dq) / (L - n)
-            ta_cnt[gi, j] = 1.0
-            e2 = np.einsum("gj,gj->g", Q[:, n], Q[:, n])
+        m = min(n_max, L - 1)  # the lags shorter than the tracks, all at once (compiled)
+        if m > 0:
+            from ._msd_kernels import lag_square_sums
+
+            ta_sum[gi, :m] = lag_square_sums(Q, m) / (L - lags[:m])
+            ta_cnt[gi, :m] = 1.0
+            e2 = np.einsum("gnj,gnj->gn", Q[:, 1 : m + 1], Q[:, 1 : m + 1])
             fin = np.isfinite(e2)
-            ea_cnt[gi, j] = fin
-            ea[gi, j] = np.where(fin, e2, 0.0)
+            ea_cnt[gi, :m] = fin
+            ea[gi, :m] = np.where(fin, e2, 0.0)
         if L > k_eb + 1:
             dk = Q[:, k_eb:] - Q[:, :-k_eb]
             eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
