@@ -64,6 +64,8 @@ SCENES: dict[str, tuple[str, dict, int]] = {
     "narrow_psf": ("NA 1.2", {"numerical_aperture": 1.2}, 16),
     "noisy_camera": ("read noise 10 e-, offset 500", {"read_noise_electrons": 10.0, "offset_adu": 500}, 16),
     "8bit": ("8-bit data, gain 0.2 ADU/e-, offset 10", {"gain_adu_per_electron": 0.2, "offset_adu": 10}, 8),
+    "very_dim": ("250 photons", {"photons": 250}, 16),
+    "low_snr": ("400 photons, bg 60, read noise 6 e-", {"photons": 400, "background_photons": 60, "read_noise_electrons": 6.0}, 16),
 }
 
 
