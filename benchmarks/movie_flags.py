@@ -22,6 +22,10 @@ subdiffusive samples carry ``subdiffusive`` and not ``superdiffusive``, drifting
 neither ``superdiffusive`` nor ``subdiffusive``, the directed sample carries ``directed`` or
 ``superdiffusive``.
 
+A second table gives the per-track alpha of the movie's tracks (``track_fits.csv``: ``alpha`` from the
+estimators, ``class_alpha`` from the motion classes) as mean absolute error against the scene's true alpha,
+beside a plain log-log fit of each track's time-averaged MSD over lags 1 to min(10, n/2) on the same tracks.
+
 Run: python benchmarks/movie_flags.py [--scenes a,b] [--executor serial|local] [--cache DIR]
 Rendered movies are cached in --cache (default: a folder in the system temp dir). One movie of 192 x 192 px
 x 200-300 frames takes about half a minute on one core.
@@ -33,6 +37,7 @@ import argparse
 import hashlib
 import json
 import os
+import shutil
 import tempfile
 import time
 from pathlib import Path
@@ -151,6 +156,38 @@ def truth_tracks(truth_csv: Path, min_points: int = 10) -> pd.DataFrame:
     return t[["track", "frame", "x_um", "y_um"]].reset_index(drop=True)
 
 
+def loglog_alpha(tracks: pd.DataFrame) -> pd.Series:
+    """Plain log-log slope of each track's time-averaged MSD over lags 1..min(10, n/2) (frame pairs only)."""
+    out = {}
+    for tid, g in tracks.groupby("track"):
+        f = g["frame"].to_numpy()
+        xy = g[["x_um", "y_um"]].to_numpy()
+        pos = np.full((f[-1] - f[0] + 1, 2), np.nan)
+        pos[f - f[0]] = xy
+        lags = np.arange(1, max(2, min(10, len(f) // 2)) + 1)
+        sq = [np.sum((pos[n:] - pos[:-n]) ** 2, axis=1) for n in lags]
+        msd = np.array([v[np.isfinite(v)].mean() if np.isfinite(v).any() else np.nan for v in sq])
+        ok = np.isfinite(msd) & (msd > 0)
+        if ok.sum() >= 2:
+            out[tid] = float(np.polyfit(np.log(lags[ok]), np.log(msd[ok]), 1)[0])
+    return pd.Series(out, dtype=float)
+
+
+def alpha_errors(stack_dir: Path, alpha_true: float) -> dict:
+    """Mean absolute error of per-track alpha (msdkit's two columns and a plain log-log fit)."""
+    fits = pd.read_csv(stack_dir / "track_fits.csv").set_index("track")
+    ll = loglog_alpha(pd.read_parquet(stack_dir / "tracks.parquet"))
+    both = fits.index.intersection(ll.index)
+    fits = fits.loc[both]
+    err = lambda v: float(np.nanmean(np.abs(np.asarray(v, float) - alpha_true)))  # noqa: E731
+    return {
+        "n_alpha_tracks": int(len(both)),
+        "mae_alpha": err(fits["alpha"]),
+        "mae_class_alpha": err(fits["class_alpha"]),
+        "mae_loglog": err(ll.loc[both]),
+    }
+
+
 def verdict(kind: str, flags: set) -> bool:
     motion = flags & set(MOTION_FLAGS)
     if kind == "brownian":
@@ -166,6 +203,13 @@ def verdict(kind: str, flags: set) -> bool:
 
 def run(names: list[str], size: int, cache: Path, executor: str) -> pd.DataFrame:
     work = Path(tempfile.mkdtemp(prefix="msdkit_movie_flags_"))
+    try:
+        return _run(names, size, cache, executor, work)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def _run(names: list[str], size: int, cache: Path, executor: str, work: Path) -> pd.DataFrame:
     recs = {n: recipe(n, size) for n in names}
     rows = []
     for n in names:
@@ -201,6 +245,9 @@ def run(names: list[str], size: int, cache: Path, executor: str) -> pd.DataFrame
             tr, frame_interval_s=rec.frame_interval_s, exposure_s=rec.exposure_s, temperature_c=25.0
         ).summary
         kind = SCENES[n][0]
+        pop = rec.populations[0].motion
+        alpha_true = {"brownian": 1.0, "fbm": getattr(pop, "alpha", np.nan)}.get(pop.model, np.nan)
+        errs = alpha_errors(work / "results" / row.stack, alpha_true) if np.isfinite(alpha_true) else {}
         rows.append(
             {
                 "scene": n,
@@ -219,6 +266,8 @@ def run(names: list[str], size: int, cache: Path, executor: str) -> pd.DataFrame
                 "truth_alpha_hi": ref["alpha_ci95"][1],
                 "truth_flags": ";".join(ref["flags"]),
                 "truth_ok": verdict(kind, set(ref["flags"])),
+                "alpha_true": alpha_true,
+                **errs,
                 "t_render_s": t_render,
                 "t_run_s": t_run,
             }
@@ -250,6 +299,23 @@ def report(df: pd.DataFrame, size: int) -> None:
             f"{r['flags'].replace(';', ', ') or '–'} | {'yes' if r.ok else '**no**'} | "
             f"{r.truth_alpha:.3f} [{r.truth_alpha_lo:.3f}, {r.truth_alpha_hi:.3f}] | "
             f"{r['truth_flags'].replace(';', ', ') or '–'} | {'yes' if r.truth_ok else '**no**'} |"
+        )
+    a = df[np.isfinite(df["alpha_true"])]
+    if len(a):
+        print(
+            "\n## Per-track alpha on the movies' tracks: mean absolute error against the true alpha\n\n"
+            "| movie | true alpha | tracks | msdkit `alpha` | msdkit `class_alpha` | plain log-log TA-MSD |\n"
+            "|---|---|---|---|---|---|"
+        )
+        for _, r in a.iterrows():
+            print(
+                f"| {r.scene} | {r.alpha_true:g} | {int(r.n_alpha_tracks)} | {r.mae_alpha:.3f} | "
+                f"{r.mae_class_alpha:.3f} | {r.mae_loglog:.3f} |"
+            )
+        w = a["n_alpha_tracks"].to_numpy(float)
+        print(
+            f"| all (track-weighted) | | {int(w.sum())} | {np.average(a.mae_alpha, weights=w):.3f} | "
+            f"{np.average(a.mae_class_alpha, weights=w):.3f} | {np.average(a.mae_loglog, weights=w):.3f} |"
         )
     print(
         f"\nflags right on {int(df.ok.sum())} of {len(df)} movies (on the true tracks: "

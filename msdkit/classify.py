@@ -47,6 +47,7 @@ CLASS_COLUMNS: dict[str, str] = {
     "alpha": "float64",
     "alpha_ci95_lo": "float64",
     "alpha_ci95_hi": "float64",
+    "alpha_posterior": "float64",
     "D_um2_s": "float64",
     "K_um2_s_alpha": "float64",
     "sigma_um": "float64",
@@ -362,6 +363,42 @@ def _choose(
     return labels, conf, score
 
 
+def _alpha_posterior(profiles: np.ndarray, usable: np.ndarray, n_iter: int = 50) -> np.ndarray:
+    """Posterior mean of each track's alpha under the distribution of alpha over all tracks (empirical Bayes).
+
+    The distribution is a discrete one on the alpha grid, estimated from all usable tracks' profile
+    likelihoods by expectation-maximisation towards the nonparametric maximum-likelihood mixing distribution,
+    started from a uniform one and stopped after ``n_iter`` steps (early stopping keeps it smooth); each
+    track's alpha is then the mean of its profile likelihood times that distribution. A short track's
+    own likelihood is flat, so it borrows from the tracks like it; a long track keeps its own value; a
+    sample of several kinds of motion keeps several modes.
+
+    References
+    ----------
+    H. Robbins, Proc. Third Berkeley Symp. Math. Stat. Prob. 1, 157 (1956) (empirical Bayes).
+    N. Laird, J. Am. Stat. Assoc. 73, 805 (1978) (nonparametric maximum likelihood of a mixing distribution
+    by EM).
+    B. Efron, Stat. Sci. 34, 177 (2019) (g-modelling).
+    """
+    out = np.full(profiles.shape[0], np.nan)
+    ok = usable & np.all(np.isfinite(profiles), axis=1)
+    if not ok.any():
+        return out
+    L = np.exp(profiles[ok] - profiles[ok].max(axis=1, keepdims=True))  # (n, A), each row's max is 1
+    prior = np.full(ALPHA_GRID.size, 1.0 / ALPHA_GRID.size)
+    for _ in range(int(n_iter)):
+        post = L * prior
+        post /= np.maximum(post.sum(axis=1, keepdims=True), 1e-300)
+        new = post.mean(axis=0)
+        done = np.max(np.abs(new - prior)) < 1e-7
+        prior = new
+        if done:
+            break
+    post = L * np.maximum(prior, 1e-300)
+    out[ok] = (post @ ALPHA_GRID) / post.sum(axis=1)
+    return out
+
+
 def classify_tracks(
     tracks: pd.DataFrame,
     track_fits: pd.DataFrame | None = None,
@@ -404,7 +441,9 @@ def classify_tracks(
         One row per track with the columns of :data:`CLASS_COLUMNS`: ``motion_class`` (one of
         :data:`msdkit.schema.MOTION_CLASSES`), ``class_confidence`` (weight of the chosen model among the
         five, from the penalised likelihoods), ``alpha`` with its 95 % profile-likelihood interval
-        (``alpha_ci95_lo``, ``alpha_ci95_hi``), ``D_um2_s`` and ``sigma_um`` of the Brownian model,
+        (``alpha_ci95_lo``, ``alpha_ci95_hi``), ``alpha_posterior`` (the track's alpha given the spread of
+        alpha over all tracks of the table, see :func:`_alpha_posterior`; the better single value for short
+        tracks), ``D_um2_s`` and ``sigma_um`` of the Brownian model,
         ``K_um2_s_alpha`` of the power-law model, ``confinement_um`` (box side L) and ``confinement_time_s``
         (L²/12D) for confined tracks, ``speed_um_s`` for directed tracks, the log-likelihood gains behind the
         choice (mobile over immobile, anomalous/confined/directed over Brownian) and step statistics (lag-1
@@ -457,6 +496,7 @@ def classify_tracks(
         max_alpha_ci_width=max_alpha_ci_width,
     )
     T = fits.ids.size
+    alpha_post = _alpha_posterior(fits.alpha_profile, fits.usable)
     stats_ = _step_statistics_all(fits.positions) if T else np.zeros((0, 4))
     is_conf = labels == "confined"
     is_dir = labels == "directed"
@@ -470,6 +510,7 @@ def classify_tracks(
             "alpha": fits.alpha,
             "alpha_ci95_lo": fits.alpha_lo,
             "alpha_ci95_hi": fits.alpha_hi,
+            "alpha_posterior": alpha_post,
             "D_um2_s": fits.D_um2_s,
             "K_um2_s_alpha": fits.K_um2_s_alpha,
             "sigma_um": fits.sigma_um,

@@ -436,3 +436,33 @@ def test_short_fbm_tracks_give_their_alpha_and_the_subdiffusive_flag():
     m = _sample_alpha(_tracks(pos), DT)
     assert abs(m.alpha - 0.5) < 0.12
     assert "subdiffusive" in m.flags
+
+
+def test_alpha_given_the_sample_beats_the_single_track_value_on_short_tracks():
+    # Empirical Bayes (Robbins 1956; Laird 1978): with many short tracks of one alpha, each track's alpha
+    # given the spread over all tracks is far closer to the truth than its own maximum-likelihood value.
+    rng = np.random.default_rng(20)
+    pos = fbm_positions(
+        300, 15, alpha=0.5, K_um2_s_alpha=0.5, frame_interval_s=DT, exposure_s=DT,
+        localization_sd_um=0.02, rng=rng,
+    )
+    out = classify_tracks(_tracks(pos), frame_interval_s=DT, exposure_s=DT)
+    err_post = np.nanmean(np.abs(out["alpha_posterior"] - 0.5))
+    err_own = np.nanmean(np.abs(out["alpha"] - 0.5))
+    assert err_post < 0.5 * err_own
+    assert err_post < 0.15
+
+
+def test_alpha_given_the_sample_keeps_two_kinds_of_motion_apart():
+    rng = np.random.default_rng(21)
+    sub = fbm_positions(100, 100, alpha=0.4, K_um2_s_alpha=0.5, frame_interval_s=DT, localization_sd_um=0.02,
+                        rng=rng)
+    brown = brownian_positions(100, 100, D_um2_s=0.5, frame_interval_s=DT, localization_sd_um=0.02, rng=rng)
+    out = classify_tracks(_tracks(np.concatenate([sub, brown])), frame_interval_s=DT, exposure_s=0.0)
+    # Two groups stay two groups. The subdiffusive tracks' own likelihoods are flat between alpha ~0.3 and 1
+    # (at 100 points, a low alpha and localisation noise both make steps anti-correlated), so given the
+    # Brownian half of the sample they are drawn part of the way towards 1, never onto it.
+    post = out["alpha_posterior"].to_numpy()
+    assert np.mean(post[:100]) < 0.7
+    assert abs(np.mean(post[100:]) - 1.0) < 0.1
+    assert np.mean(post[100:]) - np.mean(post[:100]) > 0.3
