@@ -37,6 +37,7 @@ doi:10.1103/PhysRevE.89.022726.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -147,6 +148,11 @@ def _padded_groups(n_modes: np.ndarray, ratio: float = 1.25):
 
 def _fill_padded(idx, K, first, n_modes, *arrays):
     """(len(idx), K) arrays of each flat per-mode array for tracks idx, plus a 0/1 weight array."""
+    s0 = int(first[idx[0]]) if idx.size else 0
+    if idx.size and np.all(n_modes[idx] == K) and np.array_equal(first[idx], s0 + K * np.arange(idx.size)):
+        # tracks of K modes each, back to back: rows of a reshaped slice, no padding
+        rows = slice(s0, s0 + K * idx.size)
+        return np.ones((idx.size, K)), [arr[rows].reshape(idx.size, K).copy() for arr in arrays]
     cols = np.arange(K)
     w = (cols[None, :] < n_modes[idx][:, None]).astype(float)
     last = first[idx][:, None] + np.maximum(n_modes[idx], 1)[:, None] - 1
@@ -257,6 +263,55 @@ def _weighted_mode_tracks(st: Steps, usable: np.ndarray, kind: str, *, n_dims: i
     return out["b"], out["a"], out["lo"], out["hi"], conv
 
 
+class _Shared:
+    """Intermediates of one table that :func:`fit_tracks` and :func:`fit_sample` both need.
+
+    The pipeline fits tracks and then the sample on the same table; passing one ``_Shared(tracks, n_dims)``
+    to both collects the steps and computes each TA-MSD matrix once. It holds the table, so the identity
+    checks below cannot be fooled by a recycled object id; any other table is computed afresh.
+    """
+
+    def __init__(self, tracks: pd.DataFrame, n_dims: int):
+        self.tracks = tracks
+        self.n_dims = n_dims
+        self._steps: Steps | None = None
+        self._msd: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+
+    def steps(self, tracks: pd.DataFrame, n_dims: int) -> Steps:
+        if tracks is not self.tracks or n_dims != self.n_dims:
+            return collect_steps(tracks, n_dims)
+        if self._steps is None:
+            self._steps = collect_steps(tracks, n_dims)
+        return self._steps
+
+    def msd_matrix(self, tracks: pd.DataFrame, st: Steps, max_lag: int, n_dims: int):
+        if tracks is not self.tracks or st is not self._steps or n_dims != self.n_dims:
+            return _msd_matrix(tracks, st, max_lag, n_dims)
+        if max_lag not in self._msd:
+            self._msd[max_lag] = _msd_matrix(tracks, st, max_lag, n_dims)
+        y, npairs = self._msd[max_lag]
+        return y.copy(), npairs.copy()  # callers may write into theirs
+
+
+def _alpha_columns_shared(shared: _Shared, tracks, st, usable, sigma_um, *, dt, t_e, R, n_dims):
+    """:func:`msdkit.estimators.alpha_fits._alpha_columns` with its TA-MSD matrix from ``shared``."""
+    from .estimators import anomalous as an
+    from .estimators.alpha_fits import _alpha_lag_count, _track_alpha
+
+    lags = _ensemble_lags(st.n_steps[usable]) if sigma_um is None else None
+    need = _alpha_lag_count(st.n_steps[usable]).max(initial=1)
+    y_a, np_a = shared.msd_matrix(tracks, st, int(max(need, 1 if lags is None else lags[-1])), n_dims)
+    if sigma_um is None:
+        res = None if lags is None else _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e,
+                                                          n_dims=n_dims, rng=0, n_boot=0, lags=lags)
+        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
+    else:
+        s_shared = float(sigma_um) ** 2
+    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
+    a_lo, a_hi = an.alpha_interval(alpha, a_se)
+    return alpha, a_lo, a_hi, K
+
+
 # public API
 # ----------------------------------------------------------------------------------------------------------
 
@@ -269,6 +324,7 @@ def fit_tracks(
     method: str = "auto",
     sigma_um: float | None = None,
     fit_alpha: bool = True,
+    _shared: _Shared | None = None,
 ) -> pd.DataFrame:
     """Fit D, the localisation error and the anomalous exponent of every track.
 
@@ -328,7 +384,7 @@ def fit_tracks(
         raise ValueError(expected_got("sigma_um", "a finite number >= 0 or None", sigma_um,
                                       "Give the localisation error in µm, or leave it out."))
     R = dif.blur_coefficient(dt, t_e)
-    st = collect_steps(tracks, n_dims)
+    st = collect_steps(tracks, n_dims) if _shared is None else _shared.steps(tracks, n_dims)
     n_tr = st.ids.size
     if n_tr == 0:
         return pd.DataFrame({c: pd.Series(dtype=t) for c, t in _TRACK_FIT_DTYPES.items()})
@@ -342,7 +398,7 @@ def fit_tracks(
         status[usable & ~conv] = "not_converged"
     else:  # msd_fit
         p_max = int(min(MSD_FIT_MAX_LAG, max(2, st.n_steps.max(initial=2))))
-        y, npairs = _msd_matrix(tracks, st, p_max, n_dims)
+        y, npairs = (_msd_matrix if _shared is None else _shared.msd_matrix)(tracks, st, p_max, n_dims)
         y[~usable] = np.nan
         npairs[~usable] = 0
         b, a, p, k = dif.optimal_lags_pooled(y, npairs, np.maximum(st.n_steps, 2), p_max=p_max)
@@ -360,7 +416,8 @@ def fit_tracks(
     if not fit_alpha:
         alpha = a_lo = a_hi = K = np.full(n_tr, np.nan)
     else:
-        alpha, a_lo, a_hi, K = _alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R,
+        alpha_columns = _alpha_columns if _shared is None else partial(_alpha_columns_shared, _shared)
+        alpha, a_lo, a_hi, K = alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R,
                                               n_dims=n_dims)
 
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -434,6 +491,7 @@ def fit_sample(
     method: str = "auto",
     rng=0,
     n_boot: int = 1000,
+    _shared: _Shared | None = None,
 ) -> SampleFit:
     """Pooled D and anomalous exponent of a sample, with 95 % intervals by a bootstrap over tracks.
 
@@ -478,13 +536,16 @@ def fit_sample(
     dt, t_e = _check_common(frame_interval_s, exposure_s, n_dims, method)
     if track_fits is not None:
         ok_ids = track_fits.loc[track_fits["fit_status"] == "ok", "track"].to_numpy()
-        tracks = tracks[tracks["track"].isin(ok_ids)]
+        keep = tracks["track"].isin(ok_ids).to_numpy()
+        if not keep.all():  # (no copy of the table when every track is kept)
+            tracks = tracks[keep]
         if method == "auto" and len(track_fits) and "method" in track_fits.columns:
             m = track_fits.loc[track_fits["fit_status"] == "ok", "method"]
             if len(m):
                 method = str(m.iloc[0])
     R = dif.blur_coefficient(dt, t_e)
-    st = collect_steps(tracks, n_dims)
+    st = collect_steps(tracks, n_dims) if _shared is None else _shared.steps(tracks, n_dims)
+    msd_matrix = _msd_matrix if _shared is None else _shared.msd_matrix
     usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
     if not usable.any():
         raise FitError(expected_got("tracks", "at least one track with two steps between consecutive frames",
@@ -525,7 +586,7 @@ def fit_sample(
             return b + (q[:, 2] * u[:, 0] - q[:, 1] * u[:, 1]) / det
     else:
         p_max = int(min(MSD_FIT_MAX_LAG, max(2, np.median(st.n_steps[idx]))))
-        y, npairs = _msd_matrix(tracks, st, p_max, d)
+        y, npairs = msd_matrix(tracks, st, p_max, d)
         y, npairs = y[idx], npairs[idx]
         wy = np.where(npairs > 0, npairs * y, 0.0)
         # pooled (b, a) from the covariance estimator sets p; the fit itself uses the ensemble MSD
@@ -566,7 +627,7 @@ def fit_sample(
     lags = _ensemble_lags(st.n_steps[idx])
     pl = None
     if lags is not None:
-        y_a, np_a = _msd_matrix(tracks, st, int(lags[-1]), d)
+        y_a, np_a = msd_matrix(tracks, st, int(lags[-1]), d)
         pl = _sample_power_law(y_a[idx], np_a[idx], dt=dt, exposure_s=t_e, n_dims=d, rng=g, n_boot=n_boot,
                                lags=lags)
     if pl is not None and pl["ok"]:

@@ -337,3 +337,43 @@ def test_periodograms_with_a_free_mean_equal_those_of_the_centred_steps():
     np.testing.assert_allclose(P, mm.periodograms(steps, taper), rtol=1e-13)
     ref = mm.periodograms(steps - steps.mean(axis=1, keepdims=True), taper)
     np.testing.assert_allclose(Pd, ref, rtol=1e-9, atol=1e-12 * ref.max())
+
+
+def test_shared_intermediates_give_the_same_fits_as_separate_calls():
+    # Reference: fit_tracks and fit_sample called on their own (each collects its steps and TA-MSDs).
+    from msdkit.fit import _Shared
+
+    rng = np.random.default_rng(6)
+    pos = brownian_positions(60, 90, D_um2_s=1.0, frame_interval_s=DT, exposure_s=DT / 2,
+                             localization_sd_um=0.02, rng=rng)
+    tr = positions_to_tracks(pos, frame_interval_s=DT, lengths=rng.integers(6, 91, 60))
+    tr = tr.drop(index=rng.choice(len(tr), 100, replace=False)).reset_index(drop=True)  # gaps
+    kw = dict(frame_interval_s=DT, exposure_s=DT / 2)
+    for method in ("auto", "msd_fit", "one_step_likelihood"):
+        ref_fits = fit_tracks(tr, method=method, **kw)
+        ref_sample = fit_sample(tr, ref_fits, method=method, n_boot=50, **kw)
+        shared = _Shared(tr, 2)
+        fits = fit_tracks(tr, method=method, _shared=shared, **kw)
+        sample = fit_sample(tr, fits, method=method, n_boot=50, _shared=shared, **kw)
+        pd.testing.assert_frame_equal(fits, ref_fits)
+        assert sample == ref_sample or all(
+            np.array_equal(np.asarray(a, float), np.asarray(b, float), equal_nan=True)
+            for a, b in zip(sample.__dict__.values(), ref_sample.__dict__.values(), strict=True)
+            if not isinstance(a, str)
+        )
+
+
+def test_equal_length_modes_are_read_without_padding_as_the_padded_gather_reads_them():
+    # Reference: the padded gather written out (index arithmetic and numpy.where).
+    from msdkit.fit import _fill_padded
+
+    rng = np.random.default_rng(7)
+    n_modes = np.array([5, 5, 5, 5, 3])
+    first = np.concatenate([[0], np.cumsum(n_modes)[:-1]])
+    lam, power = rng.normal(size=n_modes.sum()), rng.normal(size=n_modes.sum())
+    idx = np.array([1, 2, 3])
+    w, (L, S) = _fill_padded(idx, 5, first, n_modes, lam, power)
+    src = first[idx][:, None] + np.arange(5)[None, :]
+    np.testing.assert_array_equal(w, np.ones((3, 5)))
+    np.testing.assert_array_equal(L, lam[src])
+    np.testing.assert_array_equal(S, power[src])
