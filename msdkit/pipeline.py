@@ -162,8 +162,10 @@ def analyze_tracks(
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
     # per-track alpha borrows the sample's shared localisation error, fitted inside fit_tracks
-    track_fits = fit.fit_tracks(tracks, method=estimator, **kw)
-    sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, **kw)
+    shared = fit._Shared(tracks, n_dims)  # steps and TA-MSD matrices computed once for both fits
+    track_fits = fit.fit_tracks(tracks, method=estimator, _shared=shared, **kw)
+    sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, _shared=shared, **kw)
+    del shared
     ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
     if max_lag_frames is None and len(ens):
         # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
@@ -190,11 +192,10 @@ def analyze_tracks(
     sigma = getattr(sample_fit, "D_sigma_um", getattr(sample_fit, "sigma_um", None))
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
-    dist, size_input = sizing.size_distribution_of_tracks(
+    dist, _ = sizing.size_distribution_of_tracks(
         tracks if sizing_tracks is None else sizing_tracks, localization_sd_um=sigma,
         wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw)
-    if sizing_tracks is not None:  # the per-track table above covers the sizing tracks: redo it for ours
-        size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
+    size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
