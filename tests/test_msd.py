@@ -150,3 +150,37 @@ def test_ensemble_msd_of_blurred_noisy_brownian_motion_follows_berglund_offset()
     expect = 4 * (D * (ens["lag_s"] - tE / 3) + sig**2)
     z = (ens["msd_um2"] - expect) / ens["sem_um2"]
     assert np.all(np.abs(z) < 4.5)
+
+
+# ------------------------------------------------------------ compiled helpers and the streamed table reader
+
+def test_compiled_lag_sums_equal_the_direct_sum_over_pairs():
+    # Reference: the sum over i of |r(i + n) - r(i)|^2 written out with numpy for every lag (common practice).
+    from msdkit._msd_kernels import lag_square_sums
+
+    rng = np.random.default_rng(2)
+    Q = np.cumsum(rng.normal(size=(7, 40, 2)), axis=1)
+    ref = np.stack([((Q[:, n:] - Q[:, :-n]) ** 2).sum(axis=(1, 2)) for n in range(1, 13)], axis=1)
+    np.testing.assert_allclose(lag_square_sums(Q, 12), ref, rtol=1e-13)
+
+
+def test_parquet_read_by_row_group_equals_pandas_read_and_sort(tmp_path):
+    # Reference: pandas.read_parquet of the same file, sorted by (track, frame).
+    from msdkit.io.tables import read_track_table
+
+    rng = np.random.default_rng(3)
+    pos = brownian_positions(40, 60, D_um2_s=0.5, frame_interval_s=0.1, rng=rng)
+    tr = positions_to_tracks(pos, frame_interval_s=0.1)[["track", "frame", "x_um", "y_um"]]
+    tr = tr.sample(frac=1.0, random_state=4).reset_index(drop=True)
+    path = tmp_path / "t.parquet"
+    tr.to_parquet(path, row_group_size=500)  # several row groups
+    got = read_track_table(path, frame_interval_s=0.1)
+    ref = pd.read_parquet(path).sort_values(["track", "frame"]).reset_index(drop=True)
+    for c in ("track", "frame", "x_um", "y_um"):
+        np.testing.assert_array_equal(got[c].to_numpy(), ref[c].to_numpy())
+    np.testing.assert_array_equal(got["time_s"].to_numpy(), ref["frame"].to_numpy() * 0.1)
+    # an error in a later row group names the row in the whole file
+    tr.loc[1234, "x_um"] = np.inf
+    tr.to_parquet(path, row_group_size=500)
+    with pytest.raises(InputError, match="first in data row 1235"):
+        read_track_table(path, frame_interval_s=0.1)

@@ -195,7 +195,8 @@ def _load_arrow(path: Path, suffix: str):
         raise InputError(f"{path.name}: {detail}. Fix or remove the row(s) and run again.") from None
 
 
-def _column(table, name: str, canon: str, path: Path, *, integer: bool) -> np.ndarray:
+def _column(table, name: str, canon: str, path: Path, *, integer: bool, row_offset: int = 0) -> np.ndarray:
+    """One column as a numpy array, validated; ``row_offset`` numbers the rows of a part of the file."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -204,7 +205,8 @@ def _column(table, name: str, canon: str, path: Path, *, integer: bool) -> np.nd
         first = int(np.flatnonzero(pc.is_null(col, nan_is_null=True).to_numpy(zero_copy_only=False))[0])
         raise InputError(
             f"{path.name}: column {name!r} has {col.null_count} empty or NaN value(s) (first in data row "
-            f"{first + 1}); expected a value in every row. Remove incomplete rows before analysis."
+            f"{row_offset + first + 1}); expected a value in every row. Remove incomplete rows before "
+            "analysis."
         )
     typ = col.type
     is_text = pa.types.is_string(typ) or pa.types.is_large_string(typ)
@@ -235,7 +237,8 @@ def _column(table, name: str, canon: str, path: Path, *, integer: bool) -> np.nd
             i = int(np.flatnonzero(bad)[0])
             raise InputError(
                 f"{path.name}: column {name!r} has {int(bad.sum())} NaN or infinite value(s) (first in data "
-                f"row {i + 1}: {values[i]}); expected finite numbers. Remove those rows before analysis."
+                f"row {row_offset + i + 1}: {values[i]}); expected finite numbers. Remove those rows before "
+                "analysis."
             )
         if integer:
             frac = values != np.round(values)
@@ -245,11 +248,55 @@ def _column(table, name: str, canon: str, path: Path, *, integer: bool) -> np.nd
                        else "Give each track a whole-number or text identifier.")
                 raise InputError(
                     f"{path.name}: column {name!r} must hold whole numbers; got {values[i]} in data row "
-                    f"{i + 1}. {fix}"
+                    f"{row_offset + i + 1}. {fix}"
                 )
             return values.astype(np.int64)
         return values
     return values.astype(np.int64 if integer else np.float64, copy=False)
+
+
+def _parquet_streamed(path: Path) -> tuple[dict[str, np.ndarray], dict[str, str]] | None:
+    """Numeric columns of a Parquet table, read one row group at a time into arrays of the final size.
+
+    Peak memory is the result plus one row group, instead of the whole Arrow table beside its numpy copy.
+    None when a needed column is not numeric (text track labels need the whole column at once).
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        pf = pq.ParquetFile(path)
+        schema = pf.schema_arrow
+    except (pa.ArrowException, OSError) as exc:
+        raise InputError(
+            f"{path.name}: not a readable Parquet file ({exc}); expected a Parquet track table. "
+            "Check that the file is complete and was written as Parquet."
+        ) from None
+    mapping = _match_columns(schema.names, path)
+    for name in mapping.values():
+        typ = schema.field(name).type
+        if not (pa.types.is_integer(typ) or pa.types.is_floating(typ)):
+            return None
+    n = pf.metadata.num_rows
+    out = {c: np.empty(n, np.int64 if c in ("track", "frame") else np.float64) for c in mapping}
+    pos = 0
+    try:
+        for i in range(pf.num_row_groups):
+            part = pf.read_row_group(i, columns=list(mapping.values()))
+            m = part.num_rows
+            for canon, name in mapping.items():
+                integer = canon in ("track", "frame")
+                out[canon][pos : pos + m] = _column(part, name, canon, path, integer=integer, row_offset=pos)
+            pos += m
+            del part
+    except (pa.ArrowException, OSError) as exc:
+        raise InputError(
+            f"{path.name}: the Parquet file cannot be read ({exc}). Re-export the table."
+        ) from None
+    if pos != n:
+        raise InputError(f"{path.name}: the Parquet file holds {pos} rows where its footer says {n}. "
+                         "Re-export the table.")
+    return out, mapping
 
 
 def read_track_table(
@@ -299,16 +346,26 @@ def read_track_table(
             repr(suffix or "(no ending)"), "Export the table as CSV or Parquet.",
         ))
 
-    table, mapping = _load_arrow(path, suffix)
-    if table.num_rows == 0:
-        raise InputError(
-            f"{path.name}: the track table has a header but no rows; expected one row per position."
-        )
-    track = _column(table, mapping["track"], "track", path, integer=True)
-    frame = _column(table, mapping["frame"], "frame", path, integer=True)
+    streamed = _parquet_streamed(path) if suffix in PARQUET_SUFFIXES else None
+    if streamed is not None:
+        cols, mapping = streamed
+        if cols["track"].size == 0:
+            raise InputError(
+                f"{path.name}: the track table has a header but no rows; expected one row per position."
+            )
+        track, frame = cols["track"], cols["frame"]
+    else:
+        table, mapping = _load_arrow(path, suffix)
+        if table.num_rows == 0:
+            raise InputError(
+                f"{path.name}: the track table has a header but no rows; expected one row per position."
+            )
+        cols = {canon: _column(table, name, canon, path, integer=canon in ("track", "frame"))
+                for canon, name in mapping.items()}
+        del table
+        track, frame = cols["track"], cols["frame"]
     if "x_um" in mapping:
-        x = _column(table, mapping["x_um"], "x_um", path, integer=False)
-        y = _column(table, mapping["y_um"], "y_um", path, integer=False)
+        x, y = cols["x_um"], cols["y_um"]
     else:
         if pixel_size_um is None or not (math.isfinite(pixel_size_um) and pixel_size_um > 0):
             raise InputError(expected_got(
@@ -316,9 +373,8 @@ def read_track_table(
                 "a number > 0 (µm per pixel)", pixel_size_um,
                 "Set acquisition.pixel_size_um in the config, or give positions as x_um, y_um.",
             ))
-        x = _column(table, mapping["x_px"], "x_px", path, integer=False) * float(pixel_size_um)
-        y = _column(table, mapping["y_px"], "y_px", path, integer=False) * float(pixel_size_um)
-    del table
+        x, y = cols["x_px"] * float(pixel_size_um), cols["y_px"] * float(pixel_size_um)
+    del cols
 
     if frame.min() < 0:
         i = int(np.argmin(frame))
@@ -328,8 +384,9 @@ def read_track_table(
         )
 
     # Sort by (track, frame) unless already sorted (common for exported tables; saves the lexsort).
-    d_track = np.diff(track)
-    already = len(track) < 2 or bool(np.all((d_track > 0) | ((d_track == 0) & (np.diff(frame) > 0))))
+    from .._msd_kernels import scan_order
+
+    already = len(track) < 2 or scan_order(track, frame)[0] == 0  # one compiled pass, no temporaries
     if not already:
         # One int64 key per row sorts ~4x faster than a two-key lexsort; fall back when the ranges are huge.
         t_min, t_span = int(track.min()), int(track.max()) - int(track.min()) + 1
@@ -353,5 +410,5 @@ def read_track_table(
         "time_s": frame.astype(np.float64) * float(frame_interval_s),
         "x_um": np.asarray(x, dtype=np.float64),
         "y_um": np.asarray(y, dtype=np.float64),
-    })
+    }, copy=False)  # the arrays are ours: no second copy of the table
     return out[list(TRACK_COLUMNS)]
