@@ -192,8 +192,9 @@ def analyze_tracks(
     sigma = getattr(sample_fit, "D_sigma_um", getattr(sample_fit, "sigma_um", None))
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+    # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs)
     dist, _ = sizing.size_distribution_of_tracks(
-        tracks if sizing_tracks is None else sizing_tracks, localization_sd_um=sigma,
+        tracks if sizing_tracks is None else sizing_tracks,
         wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw)
     size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)

@@ -636,7 +636,7 @@ def size_distribution(
 
 #: Share of the spot density that competes for a track's next position (λ = this × π × spots per µm² per
 #: frame); calibrated on simulated movies with known truth (benchmarks/movie_sizing.py).
-COMPETING_SPOT_SHARE = 0.40
+COMPETING_SPOT_SHARE = 0.15
 #: Rounds of cutting tracks at size changes and refitting (each uses the previous round's distribution).
 _SPLIT_ROUNDS = 2
 
@@ -663,6 +663,54 @@ def linking_step_limits(*, max_step_um: float | None, spots_per_um2: float | Non
         lam = COMPETING_SPOT_SHARE * math.pi * float(spots_per_um2)
     ok = max_step_um is not None and np.isfinite(max_step_um) and max_step_um > 0
     return {"max_step_um": float(max_step_um) if ok else None, "step_loss_per_um2": lam}
+
+
+def robust_localization_sd_um(
+    tracks: pd.DataFrame,
+    *,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    min_adjacent_steps: int = 10,
+) -> float:
+    """Localisation SD per axis as the median over tracks of each track's covariance-based estimate.
+
+    Each track gives σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ (Vestergaard et al. 2014); the median over tracks
+    with at least ``min_adjacent_steps`` neighbouring step pairs, each weighted by that number, is robust to
+    the few tracks whose neighbouring steps are anti-correlated by a linker's back-and-forth joins between two
+    nearby particles (the pooled estimate reads up to ~40 % high on simulated 80 + 250 nm movies). Falls back
+    to the pooled estimate over all tracks when fewer than 20 tracks are that long.
+
+    References
+    ----------
+    C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014).
+    """
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    cols = ["x_um", "y_um", "z_um"][:n_dims]
+    df = tracks.sort_values(["track", "frame"], kind="stable")
+    ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
+    pos = df[cols].to_numpy(float)
+    inc = np.diff(pos, axis=0)
+    ok = (inv[1:] == inv[:-1]) & (np.diff(df["frame"].to_numpy(np.int64)) == 1)
+    ok &= np.all(np.isfinite(inc), axis=1)
+    adj = ok[:-1] & ok[1:]
+    owner = inv[:-1]
+    n = np.bincount(owner[ok], minlength=ids.size)
+    m = np.bincount(owner[:-1][adj], minlength=ids.size)
+    sum_sq = np.bincount(owner[ok], np.sum(inc[ok] ** 2, axis=1), minlength=ids.size)
+    m0 = sum_sq / (n_dims * np.maximum(n, 1))
+    prod = np.sum(inc[:-1][adj] * inc[1:][adj], axis=1)
+    m1 = np.bincount(owner[:-1][adj], prod, minlength=ids.size) / (n_dims * np.maximum(m, 1))
+    R = blur_coefficient(frame_interval_s, exposure_s)
+    s2 = R * m0 + (2 * R - 1) * m1
+    use = m >= min_adjacent_steps
+    if np.sum(use) < 20:
+        some = (m > 0) & (n > 0)
+        return math.sqrt(max(float(np.sum(n[some] * s2[some]) / max(np.sum(n[some]), 1)), 0.0))
+    order = np.argsort(s2[use])
+    cum = np.cumsum(m[use][order]) / np.sum(m[use])
+    med = float(s2[use][order][np.searchsorted(cum, 0.5)])
+    return math.sqrt(max(med, 0.0))
 
 
 def _segment_table(tracks, per_track, cut_at_position, order_cols):
@@ -712,6 +760,8 @@ def size_distribution_of_tracks(
     tracks : DataFrame
         Columns track, frame, x_um, y_um. Use every track of two or more positions: short tracks are mostly
         small, fast particles, and the kernel takes each track's own number of steps.
+    localization_sd_um : float, µm, optional
+        Default: :func:`robust_localization_sd_um` of the tracks.
     max_step_um, step_loss_per_um2 : see :func:`size_distribution` and :func:`linking_step_limits`.
     Other parameters: as :func:`size_distribution` and :func:`lag1_track_estimates`.
 
@@ -732,6 +782,8 @@ def size_distribution_of_tracks(
         rng=rng,
         **kw,
     )
+    if localization_sd_um is None:
+        localization_sd_um = robust_localization_sd_um(tracks, **kw)
     per_track = lag1_track_estimates(tracks, localization_sd_um=localization_sd_um, **kw)
     dist = size_distribution(per_track, **dist_kw)
     method_extra: dict[str, Any] = {"split_wrong_joins": bool(split_wrong_joins), "n_cuts": 0}
