@@ -700,10 +700,11 @@ def _pooled_spectrum_alpha(
         else np.zeros((0, n_units))
     )
     B = wts.shape[0]
-    Q = np.zeros((1 + B, A * R))  # Σ_runs Σ_k w_k P_k / spec_k
+    # per bootstrap unit: Σ_runs Σ_k w_k P_k / spec_k, and its number of runs of each length
+    Qu = np.zeros((n_units, A * R))
     groups = np.unique(lengths)
+    Cu = np.zeros((n_units, groups.size))
     logdets = np.zeros((groups.size, A * R))  # Σ_k w_k log spec_k of one run, per length
-    counts = np.zeros((1 + B, groups.size))  # runs per length, per replicate
     w_sums = np.zeros(groups.size)  # Σ_k w_k per length
     valid = np.ones(A * R, bool)
     e = round(float(exposure_ratio), 4)
@@ -724,10 +725,15 @@ def _pooled_spectrum_alpha(
         steps = np.stack([np.diff(runs[i], axis=0) for i in idx])
         P = periodograms(steps, bank.taper)
         q = P @ (w[None, :] / spec).T  # (n_runs, A·R)
-        # per bootstrap replicate: how often each run is drawn (its track's weight)
-        cnt = np.vstack([np.ones((1, idx.size)), wts[:, unit[idx]]])  # (1 + B, n_runs)
-        Q += cnt @ q
-        counts[:, j] = cnt.sum(axis=1)
+        u = unit[idx]
+        order = np.argsort(u, kind="stable")
+        uniq, first, n_of = np.unique(u[order], return_index=True, return_counts=True)
+        Qu[uniq] += np.add.reduceat(q[order], first, axis=0)
+        Cu[uniq, j] += n_of
+    # the sample (row 0) and each bootstrap replicate (units drawn with their multiplicities)
+    draw = np.vstack([np.ones((1, n_units)), wts])  # (1 + B, n_units)
+    Q = draw @ Qu
+    counts = draw @ Cu  # runs of each length per replicate
     LD = counts @ logdets  # Σ_runs Σ_k w_k log spec_k
     Wt = counts @ w_sums  # Σ_runs Σ_k w_k
     with np.errstate(divide="ignore", invalid="ignore"):
