@@ -337,11 +337,6 @@ def _profile_noise(ll: np.ndarray):
     return best, 0.01 * np.sinh(u), idx
 
 
-#: Tracks per chunk of the likelihood grid: a chunk's (tracks x shapes x noise ratios) arrays stay near the
-#: CPU caches instead of filling memory with the whole grid.
-_GRID_CHUNK_ELEMENTS = 1 << 18
-
-
 def _grid_terms(w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, drop_zero: bool):
     """Spectra on shapes × noise ratios: validity (S, R), log-determinant (S, R) and weights / spectrum."""
     spec = shapes[:, None, :] + NOISE_RATIO_GRID[None, :, None] * noise[None, None, :]  # (S, R, F)
@@ -357,21 +352,9 @@ def _grid_terms(w: np.ndarray, shapes: np.ndarray, noise: np.ndarray, drop_zero:
     return valid, logdet, Q
 
 
-def _loglik_chunk(P, W, valid, logdet, Qt, n_axes):
-    """Log-likelihood and scale (T, S, R) of the tracks in P from the terms of :func:`_grid_terms`."""
-    S, R = logdet.shape
-    # in place on the (T, S, R) arrays, in the order -n_axes · (logdet + W log(scale) + W)
-    scale = (P @ Qt).reshape(P.shape[0], S, R)
-    scale /= n_axes * W
-    np.maximum(scale, 1e-300, out=scale)
-    ll = np.log(scale)
-    ll *= W
-    ll += logdet[None]
-    ll += W
-    ll *= -n_axes
-    if not valid.all():
-        ll[:, ~valid] = -np.inf
-    return ll, scale
+#: Elements (tracks x shapes x noise ratios) of the likelihood grid evaluated at a time: large enough for an
+#: efficient matrix product, small enough not to hold the grid of every track in memory.
+_GRID_CHUNK_ELEMENTS = 1 << 21
 
 
 def _profile_grid(
@@ -380,29 +363,49 @@ def _profile_grid(
     """Profile Whittle log-likelihood on shapes × noise ratios, maximised over the noise ratio.
 
     P: (T, F) periodograms summed over axes; shapes: (S, F). For each track, shape and noise ratio the
-    scale is profiled out in closed form, ll = -n_axes (log det + W log(scale) + W); the grid is evaluated a
-    cache-sized chunk of tracks at a time and only each track's best noise ratio is kept.
+    scale is profiled out in closed form, ll = -n_axes (log det + W log(scale) + W). Since log is
+    increasing, the best noise ratio minimises exp((log det - min log det) / W) × scale, so the grid needs
+    one matrix product and no logarithms; ll is then evaluated at the best noise ratio and its two
+    neighbours (clipped at the grid ends). Tracks go in chunks, so the grid of every track is never held.
 
-    Returns, each of shape (T, S): the refined profile maximum and noise ratio (:func:`_profile_noise`), the
-    grid index of the best noise ratio, and the scale there.
+    Returns, each of shape (T, S): the refined profile maximum and noise ratio (as :func:`_profile_noise`
+    gives them), the grid index of the best noise ratio, and the scale there.
     """
     valid, logdet, Q = _grid_terms(w, shapes, noise, drop_zero)
     S, R, F = Q.shape
     Qt = np.ascontiguousarray(Q.reshape(S * R, F).T)
-    W = w.sum()
+    W = float(w.sum())
+    norm = n_axes * W
+    low = np.min(np.where(valid, logdet, np.inf), axis=1, keepdims=True)
+    low = np.where(np.isfinite(low), low, 0.0)
+    rank = np.where(valid, np.exp((np.where(valid, logdet, 0.0) - low) / W), np.inf)  # (S, R)
     T = P.shape[0]
-    best = np.empty((T, S))
-    ratio = np.empty((T, S))
+    ll3 = np.empty((T, S, 3))
     idx = np.empty((T, S), np.int64)
     scale = np.empty((T, S))
+    srows = np.arange(S)[None, :]
     step = max(1, _GRID_CHUNK_ELEMENTS // (S * R))
     for a in range(0, T, step):
         z = min(T, a + step)
-        ll, sc = _loglik_chunk(P[a:z], W, valid, logdet, Qt, n_axes)
-        best[a:z], ratio[a:z], i = _profile_noise(ll)
+        sc = (P[a:z] @ Qt).reshape(z - a, S, R)
+        sc /= norm
+        np.maximum(sc, 1e-300, out=sc)
+        i = np.argmin(sc * rank, axis=-1)  # (c, S)
         idx[a:z] = i
-        scale[a:z] = np.take_along_axis(sc, i[..., None], -1)[..., 0]
-    return best, ratio, idx, scale
+        for j in range(3):
+            r = np.clip(i + (j - 1), 0, R - 1)
+            v = np.take_along_axis(sc, r[..., None], -1)[..., 0]
+            if j == 1:
+                scale[a:z] = v
+            ok = valid[srows, r]
+            with np.errstate(divide="ignore"):
+                ll3[a:z, :, j] = np.where(ok, -n_axes * (logdet[srows, r] + W * np.log(v) + W), -np.inf)
+    best = ll3[..., 1]
+    interior = (idx >= 1) & (idx <= R - 2)
+    off, val = _parabola(ll3[..., 0], best, ll3[..., 2])
+    best = np.where(interior, val, best)
+    u = NOISE_U_GRID[idx] + np.where(interior, off * _NOISE_U_STEP, 0.0)
+    return best, 0.01 * np.sinh(u), idx, scale
 
 
 @dataclass(frozen=True)
