@@ -72,7 +72,7 @@ def simulate_sample(kind: str, rng: np.random.Generator):
         )
     elif kind == "fbm":
         a = rng.uniform(0.2, 0.7)
-        truth["alpha"] = a
+        truth["alpha_true"] = a
         p = fbm_positions(
             n,
             300,
@@ -171,7 +171,8 @@ def report_sample_flags(df: pd.DataFrame) -> None:
     print(
         f"`subdiffusive` detection on FBM alpha 0.2-0.7: {f['flag_subdiffusive'].mean():.3f} "
         "(target >= 0.95; "
-        f"alpha >= 0.6: {f.loc[f.alpha >= 0.6, 'flag_subdiffusive'].mean():.3f})"
+        f"alpha >= 0.6: {f.loc[f.alpha_true >= 0.6, 'flag_subdiffusive'].mean():.3f}); estimated alpha "
+        f"minus truth: mean {(f.alpha - f.alpha_true).mean():+.3f}, SD {(f.alpha - f.alpha_true).std():.3f}"
     )
     sup = d["flag_superdiffusive"].mean() if "flag_superdiffusive" in d else 0.0
     print(
