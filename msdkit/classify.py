@@ -48,6 +48,8 @@ CLASS_COLUMNS: dict[str, str] = {
     "alpha_ci95_lo": "float64",
     "alpha_ci95_hi": "float64",
     "alpha_posterior": "float64",
+    "alpha_posterior_ci95_lo": "float64",
+    "alpha_posterior_ci95_hi": "float64",
     "D_um2_s": "float64",
     "K_um2_s_alpha": "float64",
     "sigma_um": "float64",
@@ -363,8 +365,11 @@ def _choose(
     return labels, conf, score
 
 
-def _alpha_posterior(profiles: np.ndarray, usable: np.ndarray, n_iter: int = 50) -> np.ndarray:
-    """Posterior mean of each track's alpha under the distribution of alpha over all tracks (empirical Bayes).
+def _alpha_posterior(
+    profiles: np.ndarray, usable: np.ndarray, n_iter: int = 50
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Posterior mean and central 95 % interval of each track's alpha under the distribution of alpha over all
+    tracks (empirical Bayes).
 
     The distribution is a discrete one on the alpha grid, estimated from all usable tracks' profile
     likelihoods by expectation-maximisation towards the nonparametric maximum-likelihood mixing distribution,
@@ -381,9 +386,10 @@ def _alpha_posterior(profiles: np.ndarray, usable: np.ndarray, n_iter: int = 50)
     B. Efron, Stat. Sci. 34, 177 (2019) (g-modelling).
     """
     out = np.full(profiles.shape[0], np.nan)
+    lo, hi = out.copy(), out.copy()
     ok = usable & np.all(np.isfinite(profiles), axis=1)
     if not ok.any():
-        return out
+        return out, lo, hi
     L = np.exp(profiles[ok] - profiles[ok].max(axis=1, keepdims=True))  # (n, A), each row's max is 1
     prior = np.full(ALPHA_GRID.size, 1.0 / ALPHA_GRID.size)
     for _ in range(int(n_iter)):
@@ -395,8 +401,18 @@ def _alpha_posterior(profiles: np.ndarray, usable: np.ndarray, n_iter: int = 50)
         if done:
             break
     post = L * np.maximum(prior, 1e-300)
-    out[ok] = (post @ ALPHA_GRID) / post.sum(axis=1)
-    return out
+    post /= post.sum(axis=1, keepdims=True)
+    out[ok] = post @ ALPHA_GRID
+    # interval: 2.5 and 97.5 % points of the posterior, linear between grid points of its cumulative sum
+    cdf = np.cumsum(post, axis=1)
+    for q, dest in ((0.025, lo), (0.975, hi)):
+        k = np.minimum((cdf < q).sum(axis=1), ALPHA_GRID.size - 1)
+        c0 = np.where(k > 0, cdf[np.arange(k.size), np.maximum(k - 1, 0)], 0.0)
+        c1 = cdf[np.arange(k.size), k]
+        a0 = np.where(k > 0, ALPHA_GRID[np.maximum(k - 1, 0)], ALPHA_GRID[0])
+        frac = np.clip((q - c0) / np.maximum(c1 - c0, 1e-300), 0.0, 1.0)
+        dest[ok] = np.where(k > 0, a0 + frac * (ALPHA_GRID[k] - a0), ALPHA_GRID[0])
+    return out, lo, hi
 
 
 def classify_tracks(
@@ -496,7 +512,7 @@ def classify_tracks(
         max_alpha_ci_width=max_alpha_ci_width,
     )
     T = fits.ids.size
-    alpha_post = _alpha_posterior(fits.alpha_profile, fits.usable)
+    alpha_post, alpha_post_lo, alpha_post_hi = _alpha_posterior(fits.alpha_profile, fits.usable)
     stats_ = _step_statistics_all(fits.positions) if T else np.zeros((0, 4))
     is_conf = labels == "confined"
     is_dir = labels == "directed"
@@ -511,6 +527,8 @@ def classify_tracks(
             "alpha_ci95_lo": fits.alpha_lo,
             "alpha_ci95_hi": fits.alpha_hi,
             "alpha_posterior": alpha_post,
+            "alpha_posterior_ci95_lo": alpha_post_lo,
+            "alpha_posterior_ci95_hi": alpha_post_hi,
             "D_um2_s": fits.D_um2_s,
             "K_um2_s_alpha": fits.K_um2_s_alpha,
             "sigma_um": fits.sigma_um,

@@ -94,6 +94,31 @@ def _as_dict(obj) -> dict[str, Any]:
     return dict(obj)
 
 
+def _alpha_given_sample(track_fits: pd.DataFrame) -> pd.DataFrame:
+    """Report each track's alpha given the sample (empirical Bayes) as ``alpha``; keep its own as ``alpha_track``.
+
+    A track of a few tens of positions barely constrains its own alpha (its interval often spans 0.3–1.7),
+    so the reported ``alpha`` and its 95 % interval are the posterior under the distribution of alpha over all
+    tracks of the sample (``classify._alpha_posterior``): short tracks borrow from the tracks like them, long
+    tracks keep their own value, and a sample of several kinds of motion keeps several groups. The track's
+    own estimate (noise- and blur-aware, from its steps alone) stays as ``alpha_track`` with its interval.
+    Tracks without a posterior keep their own value in ``alpha``.
+    """
+    if "alpha_posterior" not in track_fits.columns or "alpha" not in track_fits.columns:
+        return track_fits
+    tf = track_fits.copy()
+    own = ["alpha", "alpha_ci95_lo", "alpha_ci95_hi"]
+    post = ["alpha_posterior", "alpha_posterior_ci95_lo", "alpha_posterior_ci95_hi"]
+    for c in own:
+        if c in tf.columns:
+            tf[c.replace("alpha", "alpha_track", 1)] = tf[c]
+    has = np.isfinite(tf["alpha_posterior"].to_numpy(float))
+    for c_own, c_post in zip(own, post, strict=True):
+        if c_own in tf.columns and c_post in tf.columns:
+            tf[c_own] = np.where(has, tf[c_post].to_numpy(float), tf[c_own].to_numpy(float))
+    return tf
+
+
 def analyze_tracks(
     tracks: pd.DataFrame,
     *,
@@ -200,6 +225,7 @@ def analyze_tracks(
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
+    track_fits = _alpha_given_sample(track_fits)
 
     sample_D = float(sample_fit.D_um2_s)
     D_lo, D_hi = (float(v) for v in sample_fit.D_ci95_um2_s)
