@@ -92,6 +92,10 @@ def _die_with_parent(parent_pid: int) -> None:
         os._exit(1)
 
 
+#: Environment variables that set the thread count of numpy's math libraries in worker processes.
+_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
 def _init_worker(q, parent_pid: int) -> None:
     global _WORKER_QUEUE
     _WORKER_QUEUE = q
@@ -151,6 +155,12 @@ class ProcessExecutor:
 
     def __enter__(self):
         self._queue = self._ctx.Queue()
+        # One math-library thread per worker: the workers already fill the cores, and multithreaded matrix
+        # products in several processes at once oversubscribe them (common practice). Variables the user set
+        # are left alone; the parent's own values are restored on exit.
+        self._saved_env = {k: os.environ.get(k) for k in _THREAD_VARS}
+        for k in _THREAD_VARS:
+            os.environ.setdefault(k, "1")
         return self
 
     def __exit__(self, *exc) -> None:
@@ -158,6 +168,12 @@ class ProcessExecutor:
             self._queue.close()
             self._queue.join_thread()
             self._queue = None
+        for k, v in getattr(self, "_saved_env", {}).items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+        self._saved_env = {}
 
     def _pool(self, n: int) -> ProcessPoolExecutor:
         return ProcessPoolExecutor(max_workers=n, mp_context=self._ctx, initializer=_init_worker,

@@ -88,3 +88,8 @@ def crashing_fake_process(input_path, cfg, stack_dir, *, stack_name, progress=No
     if Path(input_path).name.startswith("crash"):
         os._exit(77)
     return fake_process(input_path, cfg, stack_dir, stack_name=stack_name, progress=progress)
+
+
+def worker_thread_env(task, report=None):
+    """Return the math-library thread settings a worker process sees (for the executor test)."""
+    return {k: os.environ.get(k) for k in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")}

@@ -411,3 +411,18 @@ def test_real_pipeline_one_good_movie_among_broken_movies_is_complete_and_exit_c
         assert (out / name).is_file(), name
     summary = json.loads((out / "summary.json").read_text())
     assert summary["D_um2_s"] == pytest.approx(rows["beads"].D_um2_s, rel=1e-12)
+
+
+def test_local_worker_processes_run_one_math_thread_each_and_the_parent_is_restored(monkeypatch):
+    # Several worker processes each running multithreaded matrix products oversubscribe the cores (common
+    # practice: one BLAS/OpenMP thread per process when processes fill the cores).
+    from msdkit.executors import ProcessExecutor
+
+    monkeypatch.delenv("OPENBLAS_NUM_THREADS", raising=False)
+    monkeypatch.setenv("MKL_NUM_THREADS", "3")  # a user's own setting is kept
+    with ProcessExecutor(n_workers=2) as ex:
+        out = [r for _, r in ex.run(batch_fakes.worker_thread_env, [0, 1], crash_result=lambda t, e: None)]
+    assert all(r["OPENBLAS_NUM_THREADS"] == "1" and r["OMP_NUM_THREADS"] in ("1", os.environ.get("OMP_NUM_THREADS"))
+               for r in out)
+    assert all(r["MKL_NUM_THREADS"] == "3" for r in out)
+    assert "OPENBLAS_NUM_THREADS" not in os.environ
