@@ -547,3 +547,31 @@ def lag_square_sums(Q, n_lags):  # pragma: no cover - compiled
                     s += v * v
                 out[g, n - 1] += s
     return out
+
+
+# ------------------------------------------------------------------------------------------ ensemble MSD
+@numba.njit(cache=True)
+def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled
+    """Per lag: tracks, summed pairs, summed pairs x TA-MSD, summed TA-MSD (row order, as numpy.bincount)."""
+    n_tr = np.zeros(n, np.int64)
+    sw = np.zeros(n)
+    swy = np.zeros(n)
+    sy = np.zeros(n)
+    for i in range(lag.size):
+        k = lag[i]
+        n_tr[k] += 1
+        sw[k] += w[i]
+        swy[k] += w[i] * y[i]
+        sy[k] += y[i]
+    return n_tr, sw, swy, sy
+
+
+@numba.njit(cache=True)
+def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
+    """Per lag: sum of (pairs x (TA-MSD - mean))^2 over tracks (row order, as numpy.bincount)."""
+    ss = np.zeros(n)
+    for i in range(lag.size):
+        k = lag[i]
+        r = w[i] * (y[i] - mean[k])
+        ss[k] += r * r
+    return ss

@@ -333,15 +333,15 @@ def ensemble_msd(
     y = ta["msd_um2"].to_numpy()
     w = ta["n_pairs"].to_numpy().astype(np.float64)
     n = int(lag.max()) + 1
-    n_tr = np.bincount(lag, minlength=n)
-    sw = np.bincount(lag, weights=w, minlength=n)
-    swy = np.bincount(lag, weights=w * y, minlength=n)
-    sy = np.bincount(lag, weights=y, minlength=n)
+    from . import _msd_kernels as k
+
+    # per-lag sums in one compiled pass each (the same sums, in the same order, as numpy.bincount)
+    lag, y = lag.astype(np.int64, copy=False), y.astype(np.float64, copy=False)
+    n_tr, sw, swy, sy = k.ensemble_sums(lag, y, w, n)
     present = np.flatnonzero(n_tr > 0)
     mean = np.zeros(n)
     mean[present] = swy[present] / sw[present]
-    resid = w * (y - mean[lag])
-    ss = np.bincount(lag, weights=resid * resid, minlength=n)
+    ss = k.ensemble_spread(lag, y, w, mean, n)
     sem = np.full(n, np.nan)
     many = n_tr > 1
     sem[many] = np.sqrt(n_tr[many] / (n_tr[many] - 1.0) * ss[many]) / sw[many]

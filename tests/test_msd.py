@@ -184,3 +184,21 @@ def test_parquet_read_by_row_group_equals_pandas_read_and_sort(tmp_path):
     tr.to_parquet(path, row_group_size=500)
     with pytest.raises(InputError, match="first in data row 1235"):
         read_track_table(path, frame_interval_s=0.1)
+
+
+def test_compiled_ensemble_sums_equal_numpy_bincount():
+    # Reference: numpy.bincount of the per-track rows, the plain way to sum per lag.
+    from msdkit import _msd_kernels as k
+
+    rng = np.random.default_rng(5)
+    lag = rng.integers(1, 30, 5000)
+    y, w = rng.gamma(2.0, size=5000), rng.integers(1, 50, 5000).astype(float)
+    n_tr, sw, swy, sy = k.ensemble_sums(lag, y, w, 30)
+    np.testing.assert_array_equal(n_tr, np.bincount(lag, minlength=30))
+    np.testing.assert_array_equal(sw, np.bincount(lag, weights=w, minlength=30))
+    np.testing.assert_array_equal(swy, np.bincount(lag, weights=w * y, minlength=30))
+    np.testing.assert_array_equal(sy, np.bincount(lag, weights=y, minlength=30))
+    mean = np.where(sw > 0, swy / np.where(sw > 0, sw, 1.0), 0.0)
+    resid = w * (y - mean[lag])
+    np.testing.assert_array_equal(k.ensemble_spread(lag, y, w, mean, 30),
+                                  np.bincount(lag, weights=resid * resid, minlength=30))
