@@ -575,3 +575,56 @@ def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
         r = w[i] * (y[i] - mean[k])
         ss[k] += r * r
     return ss
+
+
+# ------------------------------------------------------------------------------------------ size-switch path
+@numba.njit(cache=True)
+def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log_q, out):  # pragma: no cover
+    """Most probable state path of each run of steps (Viterbi) with a rank-one switch term; marks in ``out``
+    the steps at which the path jumps to a new state. ``k, theta, c`` (rows: ``run_row[r]``) give each state's
+    gamma log density ``(k - 1) ln y - y / theta + c``. Same recursion and tie rule (first maximum) as
+    :func:`msdkit._size_fit._switch_points_numpy`.
+    """
+    K = log_w.size
+    delta = np.empty(K)
+    for r in range(starts.size):
+        n = lengths[r]
+        if n < 2:
+            continue
+        s0 = starts[r]
+        row = run_row[r]
+        sw = np.zeros((n, K), dtype=np.bool_)
+        pbest = np.zeros(n, dtype=np.int64)
+        yy = y[s0]
+        ly = np.log(max(yy, 1e-300))
+        for q in range(K):
+            delta[q] = log_w[q] + (k[row, q] - 1.0) * ly - yy / theta[row, q] + c[row, q]
+        for j in range(1, n):
+            pb = 0
+            best = delta[0]
+            for q in range(1, K):
+                if delta[q] > best:
+                    best = delta[q]
+                    pb = q
+            pbest[j] = pb
+            yy = y[s0 + j]
+            ly = np.log(max(yy, 1e-300))
+            for q in range(K):
+                stay = delta[q] + log_q
+                jump = log_p + best + log_w[q]
+                if jump > stay:
+                    sw[j, q] = True
+                    prior = jump
+                else:
+                    prior = stay
+                delta[q] = (k[row, q] - 1.0) * ly - yy / theta[row, q] + c[row, q] + prior
+        state = 0
+        best = delta[0]
+        for q in range(1, K):
+            if delta[q] > best:
+                best = delta[q]
+                state = q
+        for j in range(n - 1, 0, -1):
+            if sw[j, state]:
+                out[s0 + j] = True
+                state = pbest[j]

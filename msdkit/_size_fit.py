@@ -368,7 +368,35 @@ def _step_log_densities(y, s2, D_states, dt, R, n_dims, limits: StepLimits):
     return k, theta, -k * np.log(theta) - special.gammaln(k)
 
 
-def switch_points(
+def switch_points(y, track_index, s2_track, D_states, w_states, *, dt, R, n_dims, limits, p_switch):
+    """Find the steps at which the most probable state path of each track jumps to another particle size.
+
+    Compiled version of :func:`_switch_points_numpy` (same model, recursion and result; see there).
+    """
+    from . import _msd_kernels as kern
+
+    y = np.asarray(y, dtype=float)
+    track_index = np.asarray(track_index)
+    out = np.zeros(y.size, dtype=bool)
+    if y.size == 0:
+        return out
+    w = np.asarray(w_states, dtype=float)
+    w = 0.98 * w / w.sum() + 0.02 / w.size
+    starts = np.flatnonzero(np.r_[True, track_index[1:] != track_index[:-1]])
+    lengths = np.diff(np.r_[starts, y.size])
+    owners = track_index[starts]
+    k, theta, c = _step_log_densities(None, np.asarray(s2_track, float)[owners], np.asarray(D_states, float),
+                                      dt, R, n_dims, limits)
+    kern.viterbi_switches(
+        y, starts.astype(np.int64), lengths.astype(np.int64), np.arange(starts.size, dtype=np.int64),
+        np.ascontiguousarray(k, dtype=float), np.ascontiguousarray(theta, dtype=float),
+        np.ascontiguousarray(c, dtype=float), np.log(w), float(np.log(p_switch)), float(np.log1p(-p_switch)),
+        out,
+    )
+    return out
+
+
+def _switch_points_numpy(
     y, track_index, s2_track, D_states, w_states, *, dt, R, n_dims, limits, p_switch, block=256
 ):
     """Find the steps at which the most probable state path of each track jumps to another particle size.

@@ -412,3 +412,27 @@ def test_median_of_per_track_localisation_errors_ignores_a_few_back_and_forth_jo
     sd = a / math.sqrt(2 * n_s)
     assert abs(robust**2 - sigma**2) < 4 * 1.25 * sd / math.sqrt(n_tr) + 0.066 * sd
     assert pooled > 1.5 * sigma
+
+
+def test_compiled_size_switch_path_equals_the_numpy_viterbi():
+    # Reference: the same Viterbi recursion written with numpy arrays (msdkit._size_fit._switch_points_numpy,
+    # Rabiner 1989), on tracks that switch between two particle sizes part-way.
+    from msdkit._size_fit import StepLimits, _switch_points_numpy, switch_points
+
+    g = np.random.default_rng()
+    dt, R, n_dims = 0.033, 0.075, 2
+    D_states = np.geomspace(0.5, 8.0, 40)
+    w_states = g.random(40) + 0.1
+    ys, tix = [], []
+    for t in range(300):
+        n = int(g.integers(1, 60))
+        D = np.where(np.arange(n) < g.integers(0, n + 1), 6.0, 1.5)
+        ys.append(g.gamma(1.0, 2 * D * dt, n))
+        tix.append(np.full(n, t))
+    y, tix = np.concatenate(ys), np.concatenate(tix)
+    s2 = g.uniform(0.0, 0.01, 300)
+    kw = dict(dt=dt, R=R, n_dims=n_dims, limits=StepLimits(max_step_um=None, loss_per_um2=0.0), p_switch=0.05)
+    fast = switch_points(y, tix, s2, D_states, w_states, **kw)
+    ref = _switch_points_numpy(y, tix, s2, D_states, w_states, **kw)
+    assert fast.sum() > 0
+    np.testing.assert_array_equal(fast, ref)
