@@ -663,11 +663,14 @@ def _contiguous_runs(tracks: pd.DataFrame, keep_ids: np.ndarray, min_run_points:
     f = tracks["frame"].to_numpy().astype(np.int64)
     xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])
     sel = np.isin(t, keep_ids) & np.all(np.isfinite(xyz), axis=1)
-    t, f, xyz = t[sel], f[sel], xyz[sel]
-    order = np.lexsort((f, t))
-    t, f, xyz = t[order], f[order], xyz[order]
+    if not sel.all():
+        t, f, xyz = t[sel], f[sel], xyz[sel]
     if t.size == 0:
         return [], np.zeros(0, np.int64)
+    # tables from the pipeline are already in (track, frame) order: sort only when they are not
+    if not (np.all(t[1:] >= t[:-1]) and np.all((t[1:] != t[:-1]) | (f[1:] > f[:-1]))):
+        order = np.lexsort((f, t))
+        t, f, xyz = t[order], f[order], xyz[order]
     brk = np.concatenate([[True], (t[1:] != t[:-1]) | (f[1:] != f[:-1] + 1)])
     start = np.flatnonzero(brk)
     stop = np.append(start[1:], t.size)

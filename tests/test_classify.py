@@ -466,3 +466,20 @@ def test_alpha_given_the_sample_keeps_two_kinds_of_motion_apart():
     assert np.mean(post[:100]) < 0.7
     assert abs(np.mean(post[100:]) - 1.0) < 0.1
     assert np.mean(post[100:]) - np.mean(post[:100]) > 0.3
+
+
+def test_runs_of_consecutive_frames_do_not_depend_on_row_order():
+    # Reference: the same table sorted by pandas (track, frame); a shuffled copy must give the same runs.
+    from msdkit.classify import _contiguous_runs
+
+    g = np.random.default_rng()
+    frames = np.concatenate([np.delete(np.arange(40), g.choice(40, 4, replace=False)) for _ in range(30)])
+    tracks = pd.DataFrame({"track": np.repeat(np.arange(30), 36), "frame": frames,
+                           "x_um": g.normal(size=frames.size), "y_um": g.normal(size=frames.size)})
+    keep = np.arange(0, 30, 2)
+    runs_a, own_a = _contiguous_runs(tracks.sort_values(["track", "frame"]), keep, min_run_points=3)
+    runs_b, own_b = _contiguous_runs(tracks.sample(frac=1.0, random_state=3), keep, min_run_points=3)
+    np.testing.assert_array_equal(own_a, own_b)
+    assert len(runs_a) == len(runs_b) > 0
+    for a, b in zip(runs_a, runs_b):
+        np.testing.assert_array_equal(a, b)
