@@ -89,6 +89,22 @@ class _TrackArrays:
     ids: np.ndarray  # (T,)
     n_points: np.ndarray  # observed positions per track
     positions: list  # per track (n_frames_span, d) on the frame grid, gaps filled by linear interpolation
+    xyz: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # observed rows in (track, frame) order
+    starts: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))  # first row of a track in xyz
+    gapped: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))  # track has missed frames
+
+
+def _stack_positions(positions: list, xyz, starts, gapped, idx: np.ndarray, n_pts: int) -> np.ndarray:
+    """Positions of the tracks ``idx`` (all ``n_pts`` long) as one (g, n_pts, d) array.
+
+    When the tracks are ungapped and stored back to back in ``xyz`` this is a reshaped view of it (the same
+    numbers as stacking the per-track arrays, without the copy); otherwise the per-track arrays are stacked.
+    """
+    if idx.size and xyz is not None and not gapped[idx].any():
+        s = starts[idx]
+        if np.all(np.diff(s) == n_pts) and s[0] + n_pts * idx.size <= xyz.shape[0]:
+            return xyz[s[0] : s[0] + n_pts * idx.size].reshape(idx.size, n_pts, xyz.shape[1])
+    return np.stack([positions[i] for i in idx])
 
 
 def _check_tracks(tracks, frame_interval_s, exposure_s):
@@ -140,7 +156,14 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
         p = positions[i]
         grid = np.arange(fr[0], fr[-1] + 1)
         positions[i] = np.column_stack([np.interp(grid, fr, p[:, j]) for j in range(p.shape[1])])
-    return _TrackArrays(t[start].astype(np.int64), (stop - start).astype(np.int64), positions)
+    return _TrackArrays(
+        t[start].astype(np.int64),
+        (stop - start).astype(np.int64),
+        positions,
+        xyz,
+        start.astype(np.int64),
+        gapped,
+    )
 
 
 # ------------------------------------------------------------------------------------- step statistics
@@ -197,16 +220,25 @@ def _step_statistics_group(X: np.ndarray) -> np.ndarray:
     return out
 
 
-def _step_statistics_all(positions: list) -> np.ndarray:
-    """:func:`_step_statistics` of every track (T, 4), computed per group of equal-length tracks."""
+def _step_statistics_all(positions: list, xyz=None, starts=None, gapped=None) -> np.ndarray:
+    """:func:`_step_statistics` of every track (T, 4), computed per group of equal-length tracks.
+
+    ``xyz, starts, gapped`` (from :func:`_track_arrays`) let groups of ungapped tracks stored back to back be
+    read without copying; groups go in cache-sized blocks of tracks (each track's numbers are its own).
+    """
     T = len(positions)
     out = np.full((T, 4), np.nan)
     if T == 0:
         return out
     span = np.array([p.shape[0] for p in positions], dtype=np.int64)
+    d = positions[0].shape[1]
     for n_pts in np.unique(span):
         idx = np.flatnonzero(span == n_pts)
-        out[idx] = _step_statistics_group(np.stack([positions[i] for i in idx]))
+        step = max(1, 32768 // (int(n_pts) * d))
+        for a in range(0, idx.size, step):
+            sub = idx[a : a + step]
+            X = _stack_positions(positions, xyz, starts, gapped, sub, int(n_pts))
+            out[sub] = _step_statistics_group(X)
     return out
 
 
@@ -232,20 +264,54 @@ class _Fits:
     speed_um_s: np.ndarray
     n_axes: int
     positions: list = field(repr=False)
+    xyz: np.ndarray = field(repr=False, default=None)
+    starts: np.ndarray = field(repr=False, default=None)
+    gapped: np.ndarray = field(repr=False, default=None)
+    #: per track length (positions): (indices of the fitted tracks, their tapered step periodograms)
+    periodograms: dict = field(repr=False, default_factory=dict)
 
 
 _FIT_CACHE: dict = {}
 
 
-def _fingerprint(tracks: pd.DataFrame, *extra) -> str:
+_CHECK_BLOCK = 4096
+_CHECK_W_IN = 1.0 + 0.5 * np.sin(np.arange(_CHECK_BLOCK) * 0.7548776662466927)
+
+
+def _column_check(a: np.ndarray) -> str:
+    """Cheap content check of one column: its sum and a position-weighted sum (weights differ per row).
+
+    Changing a value, or moving values to other rows, changes the weighted sum except by an unlikely
+    cancellation; a column with non-finite values (whose sums say nothing) is hashed in full instead.
+    """
+    try:
+        v = np.asarray(a, dtype=np.float64).ravel()
+    except (TypeError, ValueError):  # not numbers: hash the pandas hashes of the values
+        import hashlib
+
+        hv = pd.util.hash_array(np.asarray(a))
+        return f"{a.size}:{a.dtype}:" + hashlib.blake2b(hv.tobytes(), digest_size=16).hexdigest()
+    n = v.size
+    k = n // _CHECK_BLOCK
+    main = v[: k * _CHECK_BLOCK].reshape(k, _CHECK_BLOCK) @ _CHECK_W_IN
+    w_out = 1.0 + 0.5 * np.cos(np.arange(k) * 0.5698402909980532)
+    tail = v[k * _CHECK_BLOCK :]
+    sums = (float(v.sum()), float(main @ w_out), float(tail @ _CHECK_W_IN[: tail.size]))
+    if np.all(np.isfinite(sums)):
+        return f"{n}:{a.dtype}:" + ",".join(x.hex() for x in sums)
     import hashlib
 
-    h = hashlib.blake2b(digest_size=16)
+    return f"{n}:{a.dtype}:" + hashlib.blake2b(np.ascontiguousarray(a).tobytes(), digest_size=16).hexdigest()
+
+
+def _fingerprint(tracks: pd.DataFrame, *extra) -> str:
+    """Key of the fit cache: row count, and per column the dtype and :func:`_column_check`, plus ``extra``."""
+    parts = [str(len(tracks))]
     for c in ("track", "frame", "x_um", "y_um", "z_um"):
         if c in tracks.columns:
-            h.update(np.ascontiguousarray(tracks[c].to_numpy()).tobytes())
-    h.update(repr(extra).encode())
-    return h.hexdigest()
+            parts.append(f"{c}={_column_check(tracks[c].to_numpy())}")
+    parts.append(repr(extra))
+    return "|".join(parts)
 
 
 def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
@@ -274,10 +340,13 @@ def _fit_all_uncached(
     profile = np.full((T, ALPHA_GRID.size), np.nan)
     span = np.array([p.shape[0] for p in arr.positions], dtype=np.int64)
     usable = (arr.n_points >= max(int(min_points), 4)) & (span >= 4)
+    periodograms: dict = {}
     for n_pts in np.unique(span[usable]):
         idx = np.flatnonzero(usable & (span == n_pts))
-        steps = np.stack([np.diff(arr.positions[i], axis=0) for i in idx])
+        X = _stack_positions(arr.positions, arr.xyz, arr.starts, arr.gapped, idx, int(n_pts))
+        steps = np.diff(X, axis=1)
         f = fit_step_models(steps, exposure_ratio=e)
+        periodograms[int(n_pts)] = (idx, f.periodogram)
         Ns = steps.shape[1]
         ll["immobile"][idx] = f.ll_immobile
         ll["normal"][idx] = f.ll_brownian
@@ -316,6 +385,10 @@ def _fit_all_uncached(
         speed_um_s=out["v"],
         n_axes=n_axes,
         positions=arr.positions,
+        xyz=arr.xyz,
+        starts=arr.starts,
+        gapped=arr.gapped,
+        periodograms=periodograms,
     )
 
 
@@ -513,7 +586,9 @@ def classify_tracks(
     )
     T = fits.ids.size
     alpha_post, alpha_post_lo, alpha_post_hi = _alpha_posterior(fits.alpha_profile, fits.usable)
-    stats_ = _step_statistics_all(fits.positions) if T else np.zeros((0, 4))
+    stats_ = (
+        _step_statistics_all(fits.positions, fits.xyz, fits.starts, fits.gapped) if T else np.zeros((0, 4))
+    )
     is_conf = labels == "confined"
     is_dir = labels == "directed"
     ll = fits.ll
@@ -681,7 +756,12 @@ def _contiguous_runs(tracks: pd.DataFrame, keep_ids: np.ndarray, min_run_points:
 
 
 def _pooled_spectrum_alpha(
-    runs: list, owner: np.ndarray, exposure_ratio: float, rng: np.random.Generator, n_boot: int
+    runs: list,
+    owner: np.ndarray,
+    exposure_ratio: float,
+    rng: np.random.Generator,
+    n_boot: int,
+    known: dict | None = None,
 ):
     """Ensemble alpha from one power-law-plus-noise spectrum shared by all runs; bootstrap over tracks.
 
@@ -693,6 +773,11 @@ def _pooled_spectrum_alpha(
     track length. Summing per-track profile likelihoods instead (each track with its own scale and noise)
     is not: with two nuisance parameters per short track the pooled maximum drifts upward (about +0.3 at
     10 positions per track, +0.1 at 20, +0.04 at 30 for Brownian tracks: the Neyman–Scott problem).
+
+    ``known`` optionally maps a run length (positions) to (run indices, their periodograms) already computed
+    with the same taper (classify's fits of whole ungapped tracks); the other runs' periodograms are computed
+    here. The per-unit sums Σ_runs Σ_k w_k P_k / spec_k are formed by summing the periodograms of a unit
+    first and applying the spectra once (the sum is linear in P).
 
     Returns alpha, (lo, hi) of its 95 % interval (bootstrap over tracks, widened to the pooled profile-
     likelihood interval when that is wider) and the number of runs used.
@@ -743,13 +828,21 @@ def _pooled_spectrum_alpha(
         w = bank.weights
         logdets[j] = np.log(spec) @ w
         w_sums[j] = w.sum()
-        steps = np.stack([np.diff(runs[i], axis=0) for i in idx])
-        P = periodograms(steps, bank.taper)
-        q = P @ (w[None, :] / spec).T  # (n_runs, A·R)
+        P = np.empty((idx.size, w.size))
+        todo = np.ones(idx.size, bool)
+        if known and int(n_pts) in known:
+            k_idx, k_P = known[int(n_pts)]
+            at = np.searchsorted(idx, k_idx)  # idx is increasing; k_idx are runs of this length
+            P[at] = k_P
+            todo[at] = False
+        if todo.any():
+            steps = np.stack([np.diff(runs[i], axis=0) for i in idx[todo]])
+            P[todo] = periodograms(steps, bank.taper)
         u = unit[idx]
         order = np.argsort(u, kind="stable")
         uniq, first, n_of = np.unique(u[order], return_index=True, return_counts=True)
-        Qu[uniq] += np.add.reduceat(q[order], first, axis=0)
+        Pu = np.add.reduceat(P[order], first, axis=0)  # periodograms summed per unit
+        Qu[uniq] += Pu @ (w[None, :] / spec).T  # (units, A·R)
         Cu[uniq, j] += n_of
     # the sample (row 0) and each bootstrap replicate (units drawn with their multiplicities)
     draw = np.vstack([np.ones((1, n_units)), wts])  # (1 + B, n_units)
@@ -770,6 +863,28 @@ def _pooled_spectrum_alpha(
     else:
         lo_b, hi_b = lo_p[0], hi_p[0]
     return a_hat, (float(min(lo_b, lo_p[0])), float(max(hi_b, hi_p[0]))), len(runs)
+
+
+def _known_runs(fits: _Fits, runs: list, owner: np.ndarray) -> dict:
+    """Find the runs that are whole ungapped fitted tracks, whose periodograms classify's fits hold.
+
+    ``owner`` indexes the usable tracks in increasing id order (as :func:`_contiguous_runs` gets them); a run
+    as long as its ungapped track is that track's steps, so its periodogram (same taper) is the fitted one.
+    Returns {run length: (run indices, periodograms)}.
+    """
+    if not runs or fits.gapped is None:
+        return {}
+    usable_idx = np.flatnonzero(fits.usable)
+    track = usable_idx[owner]
+    span = np.array([fits.positions[i].shape[0] for i in track], dtype=np.int64)
+    rl = np.array([r.shape[0] for r in runs], dtype=np.int64)
+    whole = (~fits.gapped[track]) & (rl == span) & (rl == fits.n_points[track])
+    out = {}
+    for n_pts, (f_idx, f_P) in fits.periodograms.items():
+        ri = np.flatnonzero(whole & (rl == n_pts))
+        if ri.size:
+            out[int(n_pts)] = (ri, f_P[np.searchsorted(f_idx, track[ri])])
+    return out
 
 
 def _heterogeneity(log_a: np.ndarray, se: np.ndarray):
@@ -893,7 +1008,8 @@ def sample_motion(
     # immobile stay in (they only add to the shared noise term, and leaving out the short Brownian tracks
     # that look immobile by chance would select against low alpha)
     runs, owner = _contiguous_runs(tracks, np.sort(fits.ids[fits.usable]))
-    alpha, alpha_ci, n_runs = _pooled_spectrum_alpha(runs, owner, e, g, n_boot)
+    known = _known_runs(fits, runs, owner)  # whole ungapped tracks: periodograms from the fits
+    alpha, alpha_ci, n_runs = _pooled_spectrum_alpha(runs, owner, e, g, n_boot, known=known)
     n_alpha = int(np.unique(owner).size)
 
     # class fractions
@@ -909,8 +1025,15 @@ def sample_motion(
         la, se = np.zeros(fits.ids.size), np.ones(fits.ids.size)
         for n_pts in np.unique(span[use]):
             idx = np.flatnonzero(use & (span == n_pts))
-            steps = np.stack([np.diff(fits.positions[i], axis=0) for i in idx])
-            la[idx], se[idx] = amplitude_at_alpha(steps, exposure_ratio=e, alpha=alpha)
+            f_idx, f_P = fits.periodograms[int(n_pts)]  # the classify fits' periodograms of the same steps
+            la[idx], se[idx] = amplitude_at_alpha(
+                None,
+                exposure_ratio=e,
+                alpha=alpha,
+                periodogram=f_P[np.searchsorted(f_idx, idx)],
+                n_steps=int(n_pts) - 1,
+                n_axes=fits.n_axes,
+            )
         het_ratio, het_p, spread = _heterogeneity(la[use], se[use])
 
     # time-averaged vs ensemble-averaged MSD, ergodicity breaking, non-Gaussian parameter

@@ -432,6 +432,7 @@ class StepFits:
     dir_scale: np.ndarray  # per-axis 2 D Δt of the directed model
     dir_noise: np.ndarray
     end_to_end: np.ndarray  # (T, n_axes) sum of steps
+    periodogram: np.ndarray | None = None  # (T, N//2 + 1) tapered periodogram summed over axes (bank taper)
 
 
 def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float = 1.920729) -> StepFits:
@@ -523,6 +524,7 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
         dir_scale=dir_scale,
         dir_noise=dir_noise,
         end_to_end=steps.sum(axis=1),
+        periodogram=P,
     )
 
 
@@ -553,21 +555,37 @@ def _interval(prof: np.ndarray, level: np.ndarray):
     return lo, hi
 
 
-def amplitude_at_alpha(steps: np.ndarray, *, exposure_ratio: float, alpha: float):
+def amplitude_at_alpha(
+    steps: np.ndarray | None,
+    *,
+    exposure_ratio: float,
+    alpha: float,
+    periodogram: np.ndarray | None = None,
+    n_steps: int | None = None,
+    n_axes: int | None = None,
+):
     """Per-track amplitude of a power-law model with fixed alpha, and its standard error on the log scale.
 
     The amplitude A (per-axis MSD at one frame, 2 K Δt^α) is fitted with each track's own noise variance B;
     the SE of log A is from the expected Whittle information of (log A, B), i.e. with the noise fitted too.
+
+    ``periodogram`` (with ``n_steps`` and ``n_axes``, ``steps`` then None) gives the tracks' tapered
+    periodograms when they are already known (``StepFits.periodogram``), instead of the steps.
 
     Returns
     -------
     log_A : ndarray (n_tracks,)
     se_log_A : ndarray (n_tracks,)
     """
-    T, N, n_axes = steps.shape
     e = round(float(exposure_ratio), 4)
-    bank = _bank(N, e)
-    P = periodograms(steps, bank.taper)
+    if periodogram is None:
+        T, N, n_axes = steps.shape
+        bank = _bank(N, e)
+        P = periodograms(steps, bank.taper)
+    else:
+        N, n_axes = int(n_steps), int(n_axes)
+        bank = _bank(N, e)
+        P = np.asarray(periodogram, dtype=float)
     w = bank.weights
     W = w.sum()
     shape = expected_periodogram(_blurred_power(np.arange(N + 1, dtype=float), float(alpha), e), bank.taper)
