@@ -483,3 +483,123 @@ def test_runs_of_consecutive_frames_do_not_depend_on_row_order():
     assert len(runs_a) == len(runs_b) > 0
     for a, b in zip(runs_a, runs_b):
         np.testing.assert_array_equal(a, b)
+
+
+# ------------------------------------------------------------- fast paths equal the direct computation
+def _mixed_table(g, n_tracks=24, n_frames=60):
+    """Tracks of two lengths, some with missed frames and one NaN row, rows in (track, frame) order."""
+    pos = brownian_positions(n_tracks, n_frames, D_um2_s=0.4, frame_interval_s=DT, exposure_s=DT,
+                             localization_sd_um=0.02, rng=g)
+    t = positions_to_tracks(pos, frame_interval_s=DT, lengths=np.where(np.arange(n_tracks) % 3 == 0, 40, 60))
+    drop = []
+    for tr in (2, 7):  # missed frames inside two tracks
+        rows = np.flatnonzero(t["track"].to_numpy() == tr)
+        drop += [rows[10], rows[11], rows[30]]
+    t = t.drop(index=t.index[drop]).reset_index(drop=True)
+    t.loc[t.index[t["track"].to_numpy() == 5][20], "x_um"] = np.nan
+    return t
+
+
+def test_grouped_step_statistics_equal_the_per_track_function():
+    # Reference: the per-track statistics (numpy.diff, numpy.cov, numpy.linalg.eigvalsh on one track at a
+    # time); the grouped, blocked and no-copy path must give the same numbers to rounding.
+    from msdkit.classify import _step_statistics, _step_statistics_all, _track_arrays
+
+    arr = _track_arrays(_mixed_table(np.random.default_rng()))
+    fast = _step_statistics_all(arr.positions, arr.xyz, arr.starts, arr.gapped)
+    direct = np.array([_step_statistics(p) for p in arr.positions])
+    np.testing.assert_allclose(fast, direct, rtol=1e-10, atol=1e-14)
+
+
+def test_no_copy_groups_equal_stacked_tracks():
+    # Reference: numpy.stack of the per-track position arrays.
+    from msdkit.classify import _stack_positions, _track_arrays
+
+    arr = _track_arrays(_mixed_table(np.random.default_rng()))
+    span = np.array([p.shape[0] for p in arr.positions])
+    for n in np.unique(span):
+        idx = np.flatnonzero(span == n)
+        for sub in (idx, idx[1:], idx[::2]):
+            got = _stack_positions(arr.positions, arr.xyz, arr.starts, arr.gapped, sub, int(n))
+            np.testing.assert_array_equal(got, np.stack([arr.positions[i] for i in sub]))
+
+
+def test_amplitudes_from_stored_periodograms_equal_those_from_steps():
+    # Reference: amplitude_at_alpha computing the periodograms itself from the steps (numpy.fft.rfft).
+    from msdkit.motion_models import amplitude_at_alpha
+
+    g = np.random.default_rng()
+    steps = np.diff(brownian_positions(12, 50, D_um2_s=0.3, frame_interval_s=DT, exposure_s=DT,
+                                       localization_sd_um=0.02, rng=g), axis=1)
+    f = fit_step_models(steps, exposure_ratio=1.0)
+    a = amplitude_at_alpha(steps, exposure_ratio=1.0, alpha=0.8)
+    b = amplitude_at_alpha(None, exposure_ratio=1.0, alpha=0.8, periodogram=f.periodogram, n_steps=49,
+                           n_axes=2)
+    np.testing.assert_allclose(b, a, rtol=1e-12)
+    np.testing.assert_allclose(f.periodogram, periodograms(steps, split_cosine_taper(49)), rtol=1e-12)
+
+
+def test_sample_motion_reusing_the_fits_equals_the_direct_computation(monkeypatch):
+    # Reference: the same function with a fresh fit (no cache) and every run's periodogram recomputed from
+    # its steps (numpy.fft.rfft); tracks with missed frames included.
+    import msdkit.classify as C
+
+    tracks = _mixed_table(np.random.default_rng())
+    cls = classify_tracks(tracks, frame_interval_s=DT, exposure_s=DT)
+    kw = dict(frame_interval_s=DT, exposure_s=DT, n_boot=50, rng=4)
+    fast = sample_motion(tracks, cls, **kw).to_dict()
+
+    C._FIT_CACHE.clear()
+    monkeypatch.setattr(C, "_known_runs", lambda *a: {})
+    slow = sample_motion(tracks, cls, **kw).to_dict()
+    assert fast["flags"] == slow["flags"]
+    for k, v in fast["numbers"].items():
+        if v is None or isinstance(v, int):
+            assert v == slow["numbers"][k], k
+        else:
+            assert v == pytest.approx(slow["numbers"][k], rel=1e-10, abs=1e-13), k
+
+
+def test_pooled_alpha_with_per_unit_sums_equals_run_by_run_sums():
+    # Reference: Σ_runs of P_run @ (w / spec)ᵀ run by run (numpy matrix products), against which the pooled
+    # likelihood of _pooled_spectrum_alpha (periodograms summed per unit first) is checked through its result:
+    # the profile over alpha computed here directly from the run-by-run sums must have the same maximiser.
+    from msdkit.classify import _pooled_spectrum_alpha
+    from msdkit.motion_models import ALPHA_GRID, NOISE_RATIO_GRID, _bank
+
+    g = np.random.default_rng()
+    pos = fbm_positions(30, 41, alpha=0.7, K_um2_s_alpha=0.2, frame_interval_s=DT, localization_sd_um=0.01,
+                        rng=g)
+    runs = list(pos)
+    owner = np.arange(30)
+    a_hat, _, n_runs = _pooled_spectrum_alpha(runs, owner, 0.0, np.random.default_rng(0), 0)
+    bank = _bank(40, 0.0)
+    spec = bank.fbm[:, None, :] + NOISE_RATIO_GRID[None, :, None] * bank.noise[None, None, :]
+    spec = np.maximum(spec, 0.5 * bank.fbm[:, None, :])
+    w = bank.weights
+    Q = sum(periodograms(np.diff(r, axis=0)[None], bank.taper)[0] @ (w / spec).transpose(0, 2, 1)
+            for r in runs)
+    W = 30 * w.sum()
+    ll = -2 * (30 * (np.log(spec) @ w) + W * (np.log(Q / (2 * W)) + 1.0))  # (A, R)
+    half_ok = NOISE_RATIO_GRID[None, :] >= -np.min(0.5 * bank.fbm[:, 1:] / bank.noise[1:], axis=1)[:, None]
+    ll = np.where(half_ok, ll, -np.inf)
+    assert n_runs == 30
+    assert abs(a_hat - ALPHA_GRID[np.argmax(ll.max(axis=1))]) <= 0.5 * (ALPHA_GRID[1] - ALPHA_GRID[0]) + 1e-12
+
+
+def test_fit_cache_key_changes_with_the_content_and_not_with_a_copy():
+    # Common practice: a cache key must follow the data, not the object.
+    from msdkit.classify import _fingerprint
+
+    t = _mixed_table(np.random.default_rng())
+    k = _fingerprint(t, 0.03)
+    assert _fingerprint(t.copy(), 0.03) == k
+    s = t.copy()
+    x = s["x_um"].to_numpy().copy()
+    x[[3, 4]] = x[[4, 3]]  # two values swapped: same sum
+    s["x_um"] = x
+    assert _fingerprint(s, 0.03) != k
+    s = t.copy()
+    s.loc[s.index[0], "y_um"] += 1e-9
+    assert _fingerprint(s, 0.03) != k
+    assert _fingerprint(t, 0.05) != k
