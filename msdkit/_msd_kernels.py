@@ -580,25 +580,38 @@ def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
 # ------------------------------------------------------------------------------------------ size-switch path
 @numba.njit(cache=True)
 def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log_q, out):  # pragma: no cover
-    """Most probable state path of each run of steps (Viterbi) with a rank-one switch term; marks in ``out``
-    the steps at which the path jumps to a new state. ``k, theta, c`` (rows: ``run_row[r]``) give each state's
-    gamma log density ``(k - 1) ln y - y / theta + c``. Same recursion and tie rule (first maximum) as
-    :func:`msdkit._size_fit._switch_points_numpy`.
+    """Mark in ``out`` the steps at which each run's most probable state path (Viterbi) jumps to a new state.
+
+    Rank-one switch term. ``k, theta, c`` (rows: ``run_row[r]``) give each state's
+    gamma log density ``(k - 1) ln y - y / theta + c``. Same recursion, arithmetic and tie rule (first
+    maximum) as :func:`msdkit._size_fit._switch_points_numpy`: each run's rows of ``k - 1``, ``theta`` and
+    ``c`` are copied out once, and the per-state update has no branch so that it runs on vector lanes (the
+    same IEEE operations in the same order, so the same numbers).
     """
     K = log_w.size
     delta = np.empty(K)
+    km1 = np.empty(K)
+    th = np.empty(K)
+    cc = np.empty(K)
+    n_max = 0
+    for r in range(starts.size):
+        n_max = max(n_max, lengths[r])
+    sw = np.zeros((max(n_max, 1), K), dtype=np.bool_)
+    pbest = np.zeros(max(n_max, 1), dtype=np.int64)
     for r in range(starts.size):
         n = lengths[r]
         if n < 2:
             continue
         s0 = starts[r]
         row = run_row[r]
-        sw = np.zeros((n, K), dtype=np.bool_)
-        pbest = np.zeros(n, dtype=np.int64)
+        for q in range(K):
+            km1[q] = k[row, q] - 1.0
+            th[q] = theta[row, q]
+            cc[q] = c[row, q]
         yy = y[s0]
         ly = np.log(max(yy, 1e-300))
         for q in range(K):
-            delta[q] = log_w[q] + (k[row, q] - 1.0) * ly - yy / theta[row, q] + c[row, q]
+            delta[q] = log_w[q] + km1[q] * ly - yy / th[q] + cc[q]
         for j in range(1, n):
             pb = 0
             best = delta[0]
@@ -609,15 +622,14 @@ def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log
             pbest[j] = pb
             yy = y[s0 + j]
             ly = np.log(max(yy, 1e-300))
+            jb = log_p + best
+            swj = sw[j]
             for q in range(K):
                 stay = delta[q] + log_q
-                jump = log_p + best + log_w[q]
-                if jump > stay:
-                    sw[j, q] = True
-                    prior = jump
-                else:
-                    prior = stay
-                delta[q] = (k[row, q] - 1.0) * ly - yy / theta[row, q] + c[row, q] + prior
+                jump = jb + log_w[q]
+                up = jump > stay
+                swj[q] = up
+                delta[q] = km1[q] * ly - yy / th[q] + cc[q] + (jump if up else stay)
         state = 0
         best = delta[0]
         for q in range(1, K):
@@ -628,3 +640,116 @@ def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log
             if sw[j, state]:
                 out[s0 + j] = True
                 state = pbest[j]
+
+
+# ------------------------------------------------------------------------------------------ lag-1 step sums
+@numba.njit(cache=True)
+def lag1_step_sums(code, frame, c0, c1, c2, n_dims, off0, off1, off2):  # pragma: no cover - compiled
+    """Per-track sums of lag-1 steps in one pass over a table in (track, frame) order.
+
+    ``code`` is equal within a track (runs). A step joins rows i, i+1 of one track with frame difference 1
+    and finite coordinates. Returns (first row, n_points, n_steps, n_adjacent, sum of squared steps, sum of
+    products of neighbouring steps) with the positions shifted by ``off*`` before differencing, and the two
+    sums once more from the unshifted positions. Each sum adds in row order from 0.0, as
+    :func:`numpy.bincount` with weights does, and each squared step and product adds its axes in order, as
+    ``numpy.sum(..., axis=1)`` does, so the sums equal those of the array computation bit for bit.
+    """
+    n = code.size
+    n_tr = 1 if n else 0
+    for i in range(1, n):
+        if code[i] != code[i - 1]:
+            n_tr += 1
+    first = np.empty(n_tr, np.int64)
+    n_points = np.zeros(n_tr, np.int64)
+    n_steps = np.zeros(n_tr, np.int64)
+    n_adj = np.zeros(n_tr, np.int64)
+    sq_c = np.zeros(n_tr)
+    pr_c = np.zeros(n_tr)
+    sq_r = np.zeros(n_tr)
+    pr_r = np.zeros(n_tr)
+    t = -1
+    prev_ok = False
+    pc0 = pc1 = pc2 = pr0 = pr1 = pr2 = 0.0
+    for i in range(n):
+        if i == 0 or code[i] != code[i - 1]:
+            t += 1
+            first[t] = i
+            prev_ok = False
+        n_points[t] += 1
+        ok = False
+        if i + 1 < n and code[i + 1] == code[i] and frame[i + 1] - frame[i] == 1:
+            r0 = c0[i + 1] - c0[i]
+            e0 = (c0[i + 1] - off0) - (c0[i] - off0)
+            r1 = r2 = e1 = e2 = 0.0
+            if n_dims > 1:
+                r1 = c1[i + 1] - c1[i]
+                e1 = (c1[i + 1] - off1) - (c1[i] - off1)
+            if n_dims > 2:
+                r2 = c2[i + 1] - c2[i]
+                e2 = (c2[i + 1] - off2) - (c2[i] - off2)
+            ok = (np.isfinite(r0) and np.isfinite(r1) and np.isfinite(r2)
+                  and np.isfinite(e0) and np.isfinite(e1) and np.isfinite(e2))
+            if ok:
+                n_steps[t] += 1
+                s = e0 * e0
+                u = r0 * r0
+                if n_dims > 1:
+                    s = s + e1 * e1
+                    u = u + r1 * r1
+                if n_dims > 2:
+                    s = s + e2 * e2
+                    u = u + r2 * r2
+                sq_c[t] += s
+                sq_r[t] += u
+                if prev_ok:
+                    n_adj[t] += 1
+                    s = pc0 * e0
+                    u = pr0 * r0
+                    if n_dims > 1:
+                        s = s + pc1 * e1
+                        u = u + pr1 * r1
+                    if n_dims > 2:
+                        s = s + pc2 * e2
+                        u = u + pr2 * r2
+                    pr_c[t] += s
+                    pr_r[t] += u
+                pc0, pc1, pc2, pr0, pr1, pr2 = e0, e1, e2, r0, r1, r2
+        prev_ok = ok
+    return first, n_points, n_steps, n_adj, sq_c, pr_c, sq_r, pr_r
+
+
+@numba.njit(cache=True)
+def lag1_steps(code, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
+    """Return the valid lag-1 steps of a table in (track, frame) order (as in :func:`lag1_step_sums`).
+
+    Per step: its per-axis mean squared length (from the unshifted positions, axes summed in order, divided
+    by ``n_dims``), the run index of its track, and the row where it starts.
+    """
+    n = code.size
+    m = 0
+    for i in range(n - 1):
+        if code[i + 1] == code[i] and frame[i + 1] - frame[i] == 1:
+            m += 1
+    y = np.empty(m)
+    owner = np.empty(m, np.int64)
+    start = np.empty(m, np.int64)
+    t = -1
+    k = 0
+    for i in range(n):
+        if i == 0 or code[i] != code[i - 1]:
+            t += 1
+        if i + 1 < n and code[i + 1] == code[i] and frame[i + 1] - frame[i] == 1:
+            r0 = c0[i + 1] - c0[i]
+            r1 = c1[i + 1] - c1[i] if n_dims > 1 else 0.0
+            r2 = c2[i + 1] - c2[i] if n_dims > 2 else 0.0
+            if np.isfinite(r0) and np.isfinite(r1) and np.isfinite(r2):
+                u = r0 * r0
+                if n_dims > 1:
+                    u = u + r1 * r1
+                if n_dims > 2:
+                    u = u + r2 * r2
+                y[k] = u / n_dims
+                owner[k] = t
+                start[k] = i
+                k += 1
+    return y[:k], owner[:k], start[:k]

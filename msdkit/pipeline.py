@@ -218,10 +218,12 @@ def analyze_tracks(
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
     # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs)
+    step_sums = sizing.track_step_sums(tracks, n_dims=n_dims)  # one pass over the table for both calls
     dist, _ = sizing.size_distribution_of_tracks(
         tracks if sizing_tracks is None else sizing_tracks,
-        wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw)
-    size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, **size_kw)
+        wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw,
+        step_sums=step_sums if sizing_tracks is None else None)
+    size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, step_sums=step_sums, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])

@@ -84,6 +84,114 @@ def _check_timing(frame_interval_s, exposure_s, n_dims):
 # ----------------------------------------------------------------------------------------------------------
 # Per-track estimates
 # ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class TrackStepSums:
+    """Per-track sums of the lag-1 steps of one track table, from one pass over it (:func:`track_step_sums`).
+
+    Arrays are per track, in the order of ``ids`` (ascending, as :func:`numpy.unique` gives them). A step
+    joins consecutive frames of a track with finite coordinates; neighbouring steps share a position.
+    ``sum_sq_um2``/``sum_prod_um2`` (squared steps; products of neighbouring steps, summed over axes) come
+    from the positions centred on their mean, as :func:`lag1_track_estimates` uses them; the ``uncentred_``
+    pair from the positions as given, as :func:`robust_localization_sd_um` uses them. The two differ by
+    rounding only; both are kept so that each estimate is what its own pass over the table gives.
+    """
+
+    n_rows: int
+    n_dims: int
+    ids: np.ndarray
+    n_points: np.ndarray
+    n_steps: np.ndarray
+    n_adjacent_steps: np.ndarray
+    sum_sq_um2: np.ndarray
+    sum_prod_um2: np.ndarray
+    uncentred_sum_sq_um2: np.ndarray
+    uncentred_sum_prod_um2: np.ndarray
+
+
+def _position_columns(tracks: pd.DataFrame, n_dims: int) -> list[str]:
+    cols = ["x_um", "y_um", "z_um"][:n_dims]
+    missing = [c for c in ("track", "frame", *cols) if c not in tracks.columns]
+    if missing:
+        raise ValueError(
+            expected_got(
+                "the track table",
+                f"columns track, frame, {', '.join(cols)}",
+                f"no {missing}",
+                "Convert positions to µm first.",
+            )
+        )
+    return cols
+
+
+def _ordered_runs(tracks: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
+    """Return the table in (track, frame) order and an integer array equal exactly within each track's rows.
+
+    The table is not copied when it is already in order; the array is the track column itself when that is
+    of integers.
+    """
+    from ._msd_kernels import scan_order
+
+    t_all, f_all = tracks["track"].to_numpy(), tracks["frame"].to_numpy()
+    if t_all.size == 0:
+        return tracks, np.zeros(0, dtype=np.int64)
+    if t_all.dtype.kind in "iu" and f_all.dtype.kind in "iu":
+        in_order = scan_order(t_all, f_all)[0] == 0
+    else:
+        new_track = t_all[1:] != t_all[:-1]
+        in_order = bool(np.all(t_all[1:] >= t_all[:-1]) and np.all(new_track | (f_all[1:] > f_all[:-1])))
+    df = tracks if in_order else tracks.sort_values(["track", "frame"], kind="stable")
+    codes = df["track"].to_numpy()
+    if codes.dtype.kind not in "iu":
+        codes = np.unique(codes, return_inverse=True)[1].reshape(-1)
+    return df, codes
+
+
+def track_step_sums(tracks: pd.DataFrame, *, n_dims: int = 2) -> TrackStepSums:
+    """Per-track counts and sums of lag-1 steps in one compiled pass (shared by the sizing estimators).
+
+    Give the result to :func:`lag1_track_estimates`, :func:`robust_localization_sd_um` and
+    :func:`size_distribution_of_tracks` of the same table to pass over it once; each returns what it returns
+    without it. The sums add in row order, as :func:`numpy.bincount` with weights does.
+    """
+    from ._msd_kernels import lag1_step_sums
+
+    if n_dims not in (1, 2, 3):
+        raise ValueError(expected_got("n_dims", "1, 2 or 3", n_dims, "Use 2 for xy tracking."))
+    cols = _position_columns(tracks, n_dims)
+    df, codes = _ordered_runs(tracks)
+    pos = df[cols].to_numpy(float)
+    off = np.nanmean(pos, axis=0) if pos.size else np.zeros(n_dims)  # centred: float64, no large offsets
+    c = [pos[:, i] for i in range(n_dims)] + [pos[:, 0]] * (3 - n_dims)
+    o = [float(v) for v in off] + [0.0] * (3 - n_dims)
+    first, n_points, n_steps, n_adj, sq_c, pr_c, sq_r, pr_r = lag1_step_sums(
+        codes, df["frame"].to_numpy(np.int64), c[0], c[1], c[2], n_dims, o[0], o[1], o[2]
+    )
+    return TrackStepSums(
+        n_rows=len(tracks),
+        n_dims=n_dims,
+        ids=df["track"].to_numpy()[first],
+        n_points=n_points,
+        n_steps=n_steps,
+        n_adjacent_steps=n_adj,
+        sum_sq_um2=sq_c,
+        sum_prod_um2=pr_c,
+        uncentred_sum_sq_um2=sq_r,
+        uncentred_sum_prod_um2=pr_r,
+    )
+
+
+def _check_step_sums(step_sums: TrackStepSums, tracks: pd.DataFrame, n_dims: int) -> None:
+    if step_sums.n_rows != len(tracks) or step_sums.n_dims != n_dims:
+        raise ValueError(
+            expected_got(
+                "step_sums",
+                f"sums of this table ({len(tracks)} rows, n_dims={n_dims})",
+                f"sums of {step_sums.n_rows} rows, n_dims={step_sums.n_dims}",
+                "Compute them with track_step_sums of the same table, or leave step_sums out.",
+            )
+        )
+
+
 def lag1_track_estimates(
     tracks: pd.DataFrame,
     *,
@@ -91,6 +199,7 @@ def lag1_track_estimates(
     exposure_s: float,
     n_dims: int = 2,
     localization_sd_um=None,
+    step_sums: TrackStepSums | None = None,
 ) -> pd.DataFrame:
     """Per-track D from the mean squared lag-1 step with the localisation offset and blur removed.
 
@@ -107,6 +216,8 @@ def lag1_track_estimates(
         Static localisation SD per axis. When not given (and not in the table) it is estimated once for the
         whole sample from all tracks, σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ (Vestergaard et al. 2014), which is
         unbiased whatever each track's D.
+    step_sums : TrackStepSums, optional
+        :func:`track_step_sums` of this table, when already computed (the result is the same).
 
     Returns
     -------
@@ -127,47 +238,14 @@ def lag1_track_estimates(
     doi:10.1103/PhysRevE.89.022726.
     """
     _check_timing(frame_interval_s, exposure_s, n_dims)
-    cols = ["x_um", "y_um", "z_um"][:n_dims]
-    missing = [c for c in ("track", "frame", *cols) if c not in tracks.columns]
-    if missing:
-        raise ValueError(
-            expected_got(
-                "the track table",
-                f"columns track, frame, {', '.join(cols)}",
-                f"no {missing}",
-                "Convert positions to µm first.",
-            )
-        )
-    from ._msd_kernels import scan_order
-
-    t_all, f_all = tracks["track"].to_numpy(), tracks["frame"].to_numpy()
-    in_order = t_all.size > 0 and t_all.dtype.kind in "iu" and f_all.dtype.kind in "iu" and (
-        scan_order(t_all, f_all)[0] == 0)
-    df = tracks if in_order else tracks.sort_values(["track", "frame"], kind="stable")
-    if in_order:  # already sorted by (track, frame): ids and indices from the runs, as np.unique gives them
-        new_track = np.concatenate([[True], t_all[1:] != t_all[:-1]])
-        ids, inv = t_all[new_track], np.cumsum(new_track) - 1
-    else:
-        ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
-    n_tr = ids.size
-    frame = df["frame"].to_numpy(np.int64)
-    pos = df[cols].to_numpy(float)
-    pos = pos - np.nanmean(pos, axis=0) if pos.size else pos  # float64, no large offsets
-    n_points = np.bincount(inv, minlength=n_tr)
-    step_ok = (inv[1:] == inv[:-1]) & (np.diff(frame) == 1)
-    inc = np.diff(pos, axis=0)
-    step_ok &= np.all(np.isfinite(inc), axis=1)
-    sq = np.sum(inc**2, axis=1)
-    owner = inv[:-1]
-    n_steps = np.bincount(owner[step_ok], minlength=n_tr)
-    sum_sq = np.bincount(owner[step_ok], weights=sq[step_ok], minlength=n_tr)
-    adj = step_ok[:-1] & step_ok[1:]
-    prod = np.sum(inc[:-1] * inc[1:], axis=1) if inc.shape[0] > 1 else np.zeros(0)
-    n_adj = np.bincount(owner[:-1][adj], minlength=n_tr) if adj.size else np.zeros(n_tr, int)
-    sum_prod = np.bincount(owner[:-1][adj], weights=prod[adj], minlength=n_tr) if adj.size else np.zeros(n_tr)
+    if step_sums is None:
+        step_sums = track_step_sums(tracks, n_dims=n_dims)
+    _check_step_sums(step_sums, tracks, n_dims)
+    ids, n_tr = step_sums.ids, step_sums.ids.size
+    n_points, n_steps, n_adj = step_sums.n_points, step_sums.n_steps, step_sums.n_adjacent_steps
     with np.errstate(invalid="ignore", divide="ignore"):
-        m0 = sum_sq / (n_dims * n_steps)
-        m1 = sum_prod / (n_dims * n_adj)
+        m0 = step_sums.sum_sq_um2 / (n_dims * n_steps)
+        m1 = step_sums.sum_prod_um2 / (n_dims * n_adj)
     R = blur_coefficient(frame_interval_s, exposure_s)
 
     sigma2 = np.full(n_tr, np.nan)
@@ -179,7 +257,9 @@ def lag1_track_estimates(
             mapped = pd.Series(localization_sd_um).reindex(ids).to_numpy(float)
             sigma2 = mapped**2
         source = "given"
-    elif "localization_sd_um" in df.columns:
+    elif "localization_sd_um" in tracks.columns:
+        df, _ = _ordered_runs(tracks)
+        inv = np.repeat(np.arange(n_tr), n_points)
         s2 = df["localization_sd_um"].to_numpy(float) ** 2
         good = np.isfinite(s2)
         sigma2 = np.bincount(inv[good], weights=s2[good], minlength=n_tr) / np.maximum(
@@ -688,6 +768,7 @@ def robust_localization_sd_um(
     exposure_s: float,
     n_dims: int = 2,
     min_adjacent_steps: int = 10,
+    step_sums: TrackStepSums | None = None,
 ) -> float:
     """Localisation SD per axis as the median over tracks of each track's covariance-based estimate.
 
@@ -695,27 +776,20 @@ def robust_localization_sd_um(
     with at least ``min_adjacent_steps`` neighbouring step pairs, each weighted by that number, is robust to
     the few tracks whose neighbouring steps are anti-correlated by a linker's back-and-forth joins between two
     nearby particles (the pooled estimate reads up to ~40 % high on simulated 80 + 250 nm movies). Falls back
-    to the pooled estimate over all tracks when fewer than 20 tracks are that long.
+    to the pooled estimate over all tracks when fewer than 20 tracks are that long. ``step_sums``:
+    :func:`track_step_sums` of this table, when already computed.
 
     References
     ----------
     C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014).
     """
     _check_timing(frame_interval_s, exposure_s, n_dims)
-    cols = ["x_um", "y_um", "z_um"][:n_dims]
-    df, ids, inv = _ordered_with_track_index(tracks)
-    pos = df[cols].to_numpy(float)
-    inc = np.diff(pos, axis=0)
-    ok = (inv[1:] == inv[:-1]) & (np.diff(df["frame"].to_numpy(np.int64)) == 1)
-    ok &= np.all(np.isfinite(inc), axis=1)
-    adj = ok[:-1] & ok[1:]
-    owner = inv[:-1]
-    n = np.bincount(owner[ok], minlength=ids.size)
-    m = np.bincount(owner[:-1][adj], minlength=ids.size)
-    sum_sq = np.bincount(owner[ok], np.sum(inc[ok] ** 2, axis=1), minlength=ids.size)
-    m0 = sum_sq / (n_dims * np.maximum(n, 1))
-    prod = np.sum(inc[:-1][adj] * inc[1:][adj], axis=1)
-    m1 = np.bincount(owner[:-1][adj], prod, minlength=ids.size) / (n_dims * np.maximum(m, 1))
+    if step_sums is None:
+        step_sums = track_step_sums(tracks, n_dims=n_dims)
+    _check_step_sums(step_sums, tracks, n_dims)
+    n, m = step_sums.n_steps, step_sums.n_adjacent_steps
+    m0 = step_sums.uncentred_sum_sq_um2 / (n_dims * np.maximum(n, 1))
+    m1 = step_sums.uncentred_sum_prod_um2 / (n_dims * np.maximum(m, 1))
     R = blur_coefficient(frame_interval_s, exposure_s)
     s2 = R * m0 + (2 * R - 1) * m1
     use = m >= min_adjacent_steps
@@ -762,6 +836,7 @@ def size_distribution_of_tracks(
     split_wrong_joins: bool = True,
     switch_probability: float = 0.05,
     rng=0,
+    step_sums: TrackStepSums | None = None,
 ) -> tuple[SizeDistribution, pd.DataFrame]:
     """Size distribution of a sample straight from its tracks, robust to wrong joins between particles.
 
@@ -782,6 +857,8 @@ def size_distribution_of_tracks(
     localization_sd_um : float, µm, optional
         Default: :func:`robust_localization_sd_um` of the tracks.
     max_step_um, step_loss_per_um2 : see :func:`size_distribution` and :func:`linking_step_limits`.
+    step_sums : TrackStepSums, optional
+        :func:`track_step_sums` of this table, when already computed (computed once here otherwise).
     Other parameters: as :func:`size_distribution` and :func:`lag1_track_estimates`.
 
     Returns
@@ -801,9 +878,11 @@ def size_distribution_of_tracks(
         rng=rng,
         **kw,
     )
+    if step_sums is None:
+        step_sums = track_step_sums(tracks, n_dims=n_dims)
     if localization_sd_um is None:
-        localization_sd_um = robust_localization_sd_um(tracks, **kw)
-    per_track = lag1_track_estimates(tracks, localization_sd_um=localization_sd_um, **kw)
+        localization_sd_um = robust_localization_sd_um(tracks, step_sums=step_sums, **kw)
+    per_track = lag1_track_estimates(tracks, localization_sd_um=localization_sd_um, step_sums=step_sums, **kw)
     dist = size_distribution(per_track, **dist_kw)
     method_extra: dict[str, Any] = {"split_wrong_joins": bool(split_wrong_joins), "n_cuts": 0}
     if not split_wrong_joins or dist.status != "ok" or len(dist.modes_nm) == 0:
@@ -812,16 +891,16 @@ def size_distribution_of_tracks(
         raise ValueError(
             expected_got("switch_probability", "between 0 and 0.5", switch_probability, "Use about 0.05.")
         )
+    from ._msd_kernels import lag1_steps
+
     cols = ["x_um", "y_um", "z_um"][:n_dims]
-    df, ids, inv = _ordered_with_track_index(tracks)
-    df = df.reset_index(drop=True)
-    pos = df[cols].to_numpy(float)
-    frame = df["frame"].to_numpy(np.int64)
-    inc = np.diff(pos, axis=0)
-    step_ok = (inv[1:] == inv[:-1]) & (np.diff(frame) == 1) & np.all(np.isfinite(inc), axis=1)
-    y = np.sum(inc**2, axis=1)[step_ok] / n_dims
-    step_start = np.flatnonzero(step_ok)  # position index where each valid step starts
-    sigma = per_track.set_index("track")["sigma_um"].reindex(ids).to_numpy(float)
+    df, codes = _ordered_runs(tracks)
+    ids = step_sums.ids
+    c = [df[col].to_numpy(float) for col in cols]
+    c += [c[0]] * (3 - n_dims)
+    # each valid step: per-axis mean square, index of its track in ids, row where it starts
+    y, step_track, step_start = lag1_steps(codes, df["frame"].to_numpy(np.int64), c[0], c[1], c[2], n_dims)
+    sigma = per_track["sigma_um"].to_numpy(float)  # per_track rows are in the order of ids
     s2 = np.nan_to_num(sigma, nan=0.0) ** 2
     dt = float(frame_interval_s)
     R = blur_coefficient(dt, exposure_s)
@@ -837,7 +916,7 @@ def size_distribution_of_tracks(
         w_states = np.array([w_all[2 * i : 2 * i + 2].sum() for i in range(n_coarse)])
         cut_step = switch_points(
             y,
-            inv[:-1][step_ok],
+            step_track,
             s2,
             D_states,
             w_states,
@@ -854,7 +933,7 @@ def size_distribution_of_tracks(
             break
         cut_at_position = np.zeros(len(df), dtype=bool)
         cut_at_position[step_start[cut_step]] = True
-        seg = _segment_table(df, per_track, cut_at_position, ["track", "frame", *cols])
+        seg = _segment_table(df.reset_index(drop=True), per_track, cut_at_position, ["track", "frame", *cols])
         seg_sigma = seg.groupby("track")["source_track"].first().map(sigma_by_source)
         seg_est = lag1_track_estimates(seg, localization_sd_um=seg_sigma, **kw)
         dist = size_distribution(seg_est, **dist_kw)

@@ -452,3 +452,108 @@ def test_ordering_shortcut_gives_what_a_sort_and_numpy_unique_give():
         np.testing.assert_array_equal(df["x_um"].to_numpy(), ref["x_um"].to_numpy())
         np.testing.assert_array_equal(ids, ref_ids)
         np.testing.assert_array_equal(inv, ref_inv)
+
+
+def _bincount_step_sums(tracks, cols, centre):
+    """The array computation the compiled pass replaces: numpy.diff of the positions and numpy.bincount per
+    track, after a pandas sort by (track, frame) and numpy.unique."""
+    df = tracks.sort_values(["track", "frame"], kind="stable")
+    ids, inv = np.unique(df["track"].to_numpy(), return_inverse=True)
+    pos = df[cols].to_numpy(float)
+    if centre:
+        pos = pos - np.nanmean(pos, axis=0)
+    inc = np.diff(pos, axis=0)
+    ok = (inv[1:] == inv[:-1]) & (np.diff(df["frame"].to_numpy(np.int64)) == 1)
+    ok &= np.all(np.isfinite(inc), axis=1)
+    adj = ok[:-1] & ok[1:]
+    owner = inv[:-1]
+    n_tr = ids.size
+    return dict(
+        ids=ids,
+        n_points=np.bincount(inv, minlength=n_tr),
+        n_steps=np.bincount(owner[ok], minlength=n_tr),
+        n_adj=np.bincount(owner[:-1][adj], minlength=n_tr),
+        sq=np.bincount(owner[ok], np.sum(inc[ok] ** 2, axis=1), minlength=n_tr),
+        prod=np.bincount(owner[:-1][adj], np.sum(inc[:-1][adj] * inc[1:][adj], axis=1), minlength=n_tr),
+    )
+
+
+def _messy_table(g, n_dims):
+    """Tracks with gaps, a missing coordinate, a one-point track and large offsets, rows shuffled."""
+    rows = []
+    for t in g.permutation(40) * 7:
+        n = int(g.integers(1, 30))
+        frames = np.cumsum(g.choice([1, 1, 1, 1, 2, 3], n)) + int(g.integers(0, 50))
+        pos = 30.0 + np.cumsum(g.normal(0, 0.1, (n, n_dims)), axis=0)
+        if n > 4 and g.random() < 0.3:
+            pos[int(g.integers(0, n)), int(g.integers(0, n_dims))] = np.nan
+        rows.append(pd.DataFrame({"track": t, "frame": frames,
+                                  **{c: pos[:, i] for i, c in enumerate(["x_um", "y_um", "z_um"][:n_dims])}}))
+    return pd.concat(rows, ignore_index=True).sample(frac=1.0, random_state=int(g.integers(1 << 31)))
+
+
+@pytest.mark.parametrize("n_dims", [1, 2, 3])
+def test_one_pass_step_sums_equal_numpy_bincount_of_the_steps_bit_for_bit(n_dims):
+    # Reference: numpy.diff + numpy.bincount on the pandas-sorted table (general-purpose library routines),
+    # on shuffled and on ordered tables with gaps, missing coordinates and one-point tracks.
+    g = np.random.default_rng()
+    cols = ["x_um", "y_um", "z_um"][:n_dims]
+    messy = _messy_table(g, n_dims)
+    for table in (messy, messy.sort_values(["track", "frame"])):
+        s = sizing.track_step_sums(table, n_dims=n_dims)
+        for centre, sq, prod in ((True, s.sum_sq_um2, s.sum_prod_um2),
+                                 (False, s.uncentred_sum_sq_um2, s.uncentred_sum_prod_um2)):
+            ref = _bincount_step_sums(table, cols, centre)
+            np.testing.assert_array_equal(s.ids, ref["ids"])
+            np.testing.assert_array_equal(s.n_points, ref["n_points"])
+            np.testing.assert_array_equal(s.n_steps, ref["n_steps"])
+            np.testing.assert_array_equal(s.n_adjacent_steps, ref["n_adj"])
+            np.testing.assert_array_equal(sq, ref["sq"])
+            np.testing.assert_array_equal(prod, ref["prod"])
+        assert s.n_steps.sum() > 0 and s.n_adjacent_steps.sum() > 0
+
+
+def test_lag1_estimates_and_robust_sigma_follow_the_bincount_sums_exactly():
+    # Reference: Vestergaard et al. 2014 covariance estimate and the lag-1 D formula (module docstring)
+    # evaluated on numpy.bincount sums of numpy.diff steps, with a weighted median by numpy.argsort.
+    g = np.random.default_rng()
+    table = _messy_table(g, 2)
+    kw = dict(frame_interval_s=DT, exposure_s=EXPOSURE, n_dims=2)
+    R = sizing.blur_coefficient(DT, EXPOSURE)
+    ref = _bincount_step_sums(table, ["x_um", "y_um"], centre=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m0 = ref["sq"] / (2 * ref["n_steps"])
+    est = sizing.lag1_track_estimates(table, localization_sd_um=0.02, **kw)
+    np.testing.assert_array_equal(est["track"].to_numpy(), ref["ids"])
+    np.testing.assert_array_equal(est["mean_sq_step_um2"].to_numpy(), m0)
+    with np.errstate(invalid="ignore"):
+        D_ref = (m0 - 2 * 0.02**2) / (2 * DT * (1 - 2 * R))
+    np.testing.assert_array_equal(est["D_um2_s"].to_numpy(), D_ref)
+
+    raw = _bincount_step_sums(table, ["x_um", "y_um"], centre=False)
+    n, m = raw["n_steps"], raw["n_adj"]
+    s2 = R * raw["sq"] / (2 * np.maximum(n, 1)) + (2 * R - 1) * raw["prod"] / (2 * np.maximum(m, 1))
+    use = m >= 3
+    order = np.argsort(s2[use])
+    cum = np.cumsum(m[use][order]) / np.sum(m[use])
+    med = math.sqrt(max(float(s2[use][order][np.searchsorted(cum, 0.5)]), 0.0))
+    assert np.sum(use) >= 20
+    assert sizing.robust_localization_sd_um(table, min_adjacent_steps=3, **kw) == med
+
+
+def test_shared_step_sums_give_the_same_size_distribution_and_estimates():
+    # Reference: the same calls without shared sums (each passing over the table itself); common practice.
+    sizes = np.r_[np.full(150, 80.0), np.full(150, 250.0)]
+    tracks = simulate(sizes, rng=np.random.default_rng(), steps=(10, 40))
+    kw = dict(frame_interval_s=DT, exposure_s=EXPOSURE, n_dims=2)
+    sums = sizing.track_step_sums(tracks, n_dims=2)
+    d1, p1 = sizing.size_distribution_of_tracks(tracks, **KW)
+    d2, p2 = sizing.size_distribution_of_tracks(tracks, step_sums=sums, **KW)
+    pd.testing.assert_frame_equal(d1.table, d2.table, check_exact=True)
+    pd.testing.assert_frame_equal(p1, p2, check_exact=True)
+    pd.testing.assert_frame_equal(
+        sizing.lag1_track_estimates(tracks, **kw), sizing.lag1_track_estimates(tracks, step_sums=sums, **kw),
+        check_exact=True,
+    )
+    with pytest.raises(ValueError, match="step_sums"):
+        sizing.lag1_track_estimates(tracks.iloc[:-3], step_sums=sums, **kw)
