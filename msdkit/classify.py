@@ -92,6 +92,7 @@ class _TrackArrays:
     xyz: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # observed rows in (track, frame) order
     starts: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))  # first row of a track in xyz
     gapped: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))  # track has missed frames
+    gap_frames: dict = field(default_factory=dict)  # observed frames of each gapped track (by track index)
 
 
 def _stack_positions(positions: list, xyz, starts, gapped, idx: np.ndarray, n_pts: int) -> np.ndarray:
@@ -151,8 +152,10 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
     stop = np.append(start[1:], t.size)
     gapped = (f[stop - 1] - f[start] + 1) != (stop - start)
     positions = [xyz[a:b] for a, b in zip(start.tolist(), stop.tolist(), strict=True)]
+    gap_frames = {}
     for i in np.flatnonzero(gapped):
         fr = f[start[i] : stop[i]]
+        gap_frames[int(i)] = fr.copy()
         p = positions[i]
         grid = np.arange(fr[0], fr[-1] + 1)
         positions[i] = np.column_stack([np.interp(grid, fr, p[:, j]) for j in range(p.shape[1])])
@@ -163,6 +166,7 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
         xyz,
         start.astype(np.int64),
         gapped,
+        gap_frames,
     )
 
 
@@ -267,6 +271,7 @@ class _Fits:
     xyz: np.ndarray = field(repr=False, default=None)
     starts: np.ndarray = field(repr=False, default=None)
     gapped: np.ndarray = field(repr=False, default=None)
+    gap_frames: dict = field(repr=False, default_factory=dict)
     #: per track length (positions): (indices of the fitted tracks, their tapered step periodograms)
     periodograms: dict = field(repr=False, default_factory=dict)
 
@@ -388,6 +393,7 @@ def _fit_all_uncached(
         xyz=arr.xyz,
         starts=arr.starts,
         gapped=arr.gapped,
+        gap_frames=arr.gap_frames,
         periodograms=periodograms,
     )
 
@@ -755,6 +761,28 @@ def _contiguous_runs(tracks: pd.DataFrame, keep_ids: np.ndarray, min_run_points:
     return [xyz[a:b] for a, b in zip(start.tolist(), stop.tolist(), strict=True)], owner.astype(np.int64)
 
 
+def _runs_from_fits(fits: _Fits, min_run_points: int = MIN_RUN_POINTS):
+    """:func:`_contiguous_runs` of the usable tracks, read from the fits' observed positions.
+
+    Same runs in the same order (tracks by increasing id, runs by frame) without going back to the table:
+    an ungapped track is one run, a gapped one is split where its observed frames jump.
+    """
+    runs, owner = [], []
+    xyz = fits.xyz
+    for k, i in enumerate(np.flatnonzero(fits.usable).tolist()):
+        s0, n = int(fits.starts[i]), int(fits.n_points[i])
+        if fits.gapped[i]:
+            cut = np.flatnonzero(np.diff(fits.gap_frames[i]) != 1) + 1
+            bounds = np.concatenate([[0], cut, [n]]).tolist()
+        else:
+            bounds = [0, n]
+        for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+            if b - a >= int(min_run_points):
+                runs.append(xyz[s0 + a : s0 + b])
+                owner.append(k)
+    return runs, np.asarray(owner, dtype=np.int64)
+
+
 def _pooled_spectrum_alpha(
     runs: list,
     owner: np.ndarray,
@@ -1007,7 +1035,10 @@ def sample_motion(
     # ensemble alpha from one spectrum shared by all usable tracks, split at missed frames; tracks called
     # immobile stay in (they only add to the shared noise term, and leaving out the short Brownian tracks
     # that look immobile by chance would select against low alpha)
-    runs, owner = _contiguous_runs(tracks, np.sort(fits.ids[fits.usable]))
+    if fits.xyz is not None:  # the fits hold the observed positions in (track, frame) order
+        runs, owner = _runs_from_fits(fits)
+    else:
+        runs, owner = _contiguous_runs(tracks, np.sort(fits.ids[fits.usable]))
     known = _known_runs(fits, runs, owner)  # whole ungapped tracks: periodograms from the fits
     alpha, alpha_ci, n_runs = _pooled_spectrum_alpha(runs, owner, e, g, n_boot, known=known)
     n_alpha = int(np.unique(owner).size)

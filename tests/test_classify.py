@@ -603,3 +603,18 @@ def test_fit_cache_key_changes_with_the_content_and_not_with_a_copy():
     s.loc[s.index[0], "y_um"] += 1e-9
     assert _fingerprint(s, 0.03) != k
     assert _fingerprint(t, 0.05) != k
+
+
+def test_runs_read_from_the_fits_equal_the_runs_of_the_table():
+    # Reference: _contiguous_runs on the table (pandas/numpy sort and split at frame jumps); the runs taken
+    # from the fits' stored positions must be the same arrays in the same order.
+    from msdkit.classify import _contiguous_runs, _fit_all_uncached, _runs_from_fits
+
+    t = _mixed_table(np.random.default_rng())
+    fits = _fit_all_uncached(t, DT, DT, 10)
+    runs_a, own_a = _contiguous_runs(t, np.sort(fits.ids[fits.usable]))
+    runs_b, own_b = _runs_from_fits(fits)
+    np.testing.assert_array_equal(own_a, own_b)
+    assert len(runs_a) == len(runs_b) > len(np.unique(own_a))  # gapped tracks give several runs
+    for a, b in zip(runs_a, runs_b, strict=True):
+        np.testing.assert_array_equal(a, b)
