@@ -726,10 +726,7 @@ def lag1_steps(code, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
     by ``n_dims``), the run index of its track, and the row where it starts.
     """
     n = code.size
-    m = 0
-    for i in range(n - 1):
-        if code[i + 1] == code[i] and frame[i + 1] - frame[i] == 1:
-            m += 1
+    m = max(n - 1, 0)
     y = np.empty(m)
     owner = np.empty(m, np.int64)
     start = np.empty(m, np.int64)

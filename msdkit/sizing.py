@@ -160,7 +160,14 @@ def track_step_sums(tracks: pd.DataFrame, *, n_dims: int = 2) -> TrackStepSums:
     cols = _position_columns(tracks, n_dims)
     df, codes = _ordered_runs(tracks)
     pos = df[cols].to_numpy(float)
-    off = np.nanmean(pos, axis=0) if pos.size else np.zeros(n_dims)  # centred: float64, no large offsets
+    # centred: float64, no large offsets. numpy.nanmean sums a NaN-free copy with the same reduction that
+    # numpy.mean uses, so without NaNs numpy.mean gives the same numbers without the copy
+    if not pos.size:
+        off = np.zeros(n_dims)
+    elif np.isnan(pos).any():
+        off = np.nanmean(pos, axis=0)
+    else:
+        off = np.mean(pos, axis=0)
     c = [pos[:, i] for i in range(n_dims)] + [pos[:, 0]] * (3 - n_dims)
     o = [float(v) for v in off] + [0.0] * (3 - n_dims)
     first, n_points, n_steps, n_adj, sq_c, pr_c, sq_r, pr_r = lag1_step_sums(
