@@ -478,14 +478,14 @@ def _bincount_step_sums(tracks, cols, centre):
     )
 
 
-def _messy_table(g, n_dims):
-    """Tracks with gaps, a missing coordinate, a one-point track and large offsets, rows shuffled."""
+def _messy_table(g, n_dims, with_nan=True):
+    """Tracks with gaps, missing coordinates, one-point tracks and large offsets, rows shuffled."""
     rows = []
     for t in g.permutation(40) * 7:
         n = int(g.integers(1, 30))
         frames = np.cumsum(g.choice([1, 1, 1, 1, 2, 3], n)) + int(g.integers(0, 50))
         pos = 30.0 + np.cumsum(g.normal(0, 0.1, (n, n_dims)), axis=0)
-        if n > 4 and g.random() < 0.3:
+        if with_nan and n > 4 and g.random() < 0.3:
             pos[int(g.integers(0, n)), int(g.integers(0, n_dims))] = np.nan
         rows.append(pd.DataFrame({"track": t, "frame": frames,
                                   **{c: pos[:, i] for i, c in enumerate(["x_um", "y_um", "z_um"][:n_dims])}}))
@@ -498,8 +498,8 @@ def test_one_pass_step_sums_equal_numpy_bincount_of_the_steps_bit_for_bit(n_dims
     # on shuffled and on ordered tables with gaps, missing coordinates and one-point tracks.
     g = np.random.default_rng()
     cols = ["x_um", "y_um", "z_um"][:n_dims]
-    messy = _messy_table(g, n_dims)
-    for table in (messy, messy.sort_values(["track", "frame"])):
+    messy, clean = _messy_table(g, n_dims), _messy_table(g, n_dims, with_nan=False)
+    for table in (messy, messy.sort_values(["track", "frame"]), clean, clean.sort_values(["track", "frame"])):
         s = sizing.track_step_sums(table, n_dims=n_dims)
         for centre, sq, prod in ((True, s.sum_sq_um2, s.sum_prod_um2),
                                  (False, s.uncentred_sum_sq_um2, s.uncentred_sum_prod_um2)):
