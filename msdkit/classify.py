@@ -290,6 +290,7 @@ _FIT_CACHE: dict = {}
 
 _CHECK_BLOCK = 4096
 _CHECK_W_IN = 1.0 + 0.5 * np.sin(np.arange(_CHECK_BLOCK) * 0.7548776662466927)
+_CHECK_W2 = np.column_stack([np.ones(_CHECK_BLOCK), _CHECK_W_IN])  # plain and weighted sums in one product
 
 
 def _column_check(a: np.ndarray) -> str:
@@ -307,10 +308,14 @@ def _column_check(a: np.ndarray) -> str:
         return f"{a.size}:{a.dtype}:" + hashlib.blake2b(hv.tobytes(), digest_size=16).hexdigest()
     n = v.size
     k = n // _CHECK_BLOCK
-    main = v[: k * _CHECK_BLOCK].reshape(k, _CHECK_BLOCK) @ _CHECK_W_IN
+    main = v[: k * _CHECK_BLOCK].reshape(k, _CHECK_BLOCK) @ _CHECK_W2  # (k, 2)
     w_out = 1.0 + 0.5 * np.cos(np.arange(k) * 0.5698402909980532)
     tail = v[k * _CHECK_BLOCK :]
-    sums = (float(v.sum()), float(main @ w_out), float(tail @ _CHECK_W_IN[: tail.size]))
+    sums = (
+        float(main[:, 0].sum() + tail.sum()),
+        float(main[:, 1] @ w_out),
+        float(tail @ _CHECK_W_IN[: tail.size]),
+    )
     if np.all(np.isfinite(sums)):
         return f"{n}:{a.dtype}:" + ",".join(x.hex() for x in sums)
     import hashlib
@@ -1077,7 +1082,8 @@ def sample_motion(
         het_ratio, het_p, spread = _heterogeneity(la[use], se[use])
 
     # time-averaged vs ensemble-averaged MSD, ergodicity breaking, non-Gaussian parameter
-    pos = [fits.positions[i] for i in np.flatnonzero(use)]
+    use_idx = np.flatnonzero(use)
+    pos = [fits.positions[i] for i in use_idx]
     lengths = np.array([p.shape[0] for p in pos], dtype=int)
     n_max = int(max(1, min(50, np.median(lengths) // 4))) if pos else 1
     lags = np.arange(1, n_max + 1)
@@ -1130,7 +1136,7 @@ def sample_motion(
             s2_[gi] = np.where(ok, r2, 0.0).sum(1)
             s4_[gi] = np.where(ok, r2 * r2, 0.0).sum(1)
             continue
-        Q = np.stack([pos[i] for i in gi])
+        Q = _stack_positions(fits.positions, fits.xyz, fits.starts, fits.gapped, use_idx[gi], L)
         Q = Q - Q[:, :1]
         m = min(n_max, L - 1)  # the lags shorter than the tracks, all at once (compiled)
         if m > 0:
