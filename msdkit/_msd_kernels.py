@@ -578,7 +578,7 @@ def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------------ size-switch path
-@numba.njit(cache=True)
+@numba.njit(cache=True, error_model="numpy")  # no zero-division check (theta > 0), so divisions vectorise
 def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log_q, out):  # pragma: no cover
     """Mark in ``out`` the steps at which each run's most probable state path (Viterbi) jumps to a new state.
 
