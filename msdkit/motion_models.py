@@ -243,12 +243,17 @@ def _periodograms_with_free_mean(steps: np.ndarray, taper: np.ndarray) -> tuple[
     P = np.empty((T, N // 2 + 1))
     Pd = np.empty((T, N // 2 + 1))
     chunk = max(1, 65536 // max(N * d, 1))
+    def power(F, out):  # Σ_axes (re² + im²), written into out with one temporary
+        sq = F.real * F.real
+        sq += F.imag * F.imag
+        np.sum(sq, axis=1, out=out)
+
     for a in range(0, T, chunk):
         blk = steps[a : a + chunk].transpose(0, 2, 1)
         F = np.fft.rfft(blk * taper, axis=-1)
-        P[a : a + chunk] = np.sum(F.real**2 + F.imag**2, axis=1)
+        power(F, P[a : a + chunk])
         F -= blk.mean(axis=-1, keepdims=True) * H
-        Pd[a : a + chunk] = np.sum(F.real**2 + F.imag**2, axis=1)
+        power(F, Pd[a : a + chunk])
     return P, Pd
 
 
