@@ -752,22 +752,6 @@ def linking_step_limits(*, max_step_um: float | None, spots_per_um2: float | Non
     return {"max_step_um": float(max_step_um) if ok else None, "step_loss_per_um2": lam}
 
 
-def _ordered_with_track_index(tracks: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
-    """The table in (track, frame) order (not copied when it already is), its track ids and each row's index
-    into them (as ``numpy.unique(..., return_inverse=True)`` gives)."""
-    tr = tracks["track"].to_numpy()
-    fr = tracks["frame"].to_numpy()
-    if tr.size and (np.all(tr[1:] >= tr[:-1]) and np.all((tr[1:] != tr[:-1]) | (fr[1:] > fr[:-1]))):
-        df = tracks
-    else:
-        df = tracks.sort_values(["track", "frame"], kind="stable")
-        tr = df["track"].to_numpy()
-    if tr.size == 0:
-        return df, tr[:0], np.zeros(0, dtype=np.int64)
-    new = np.r_[True, tr[1:] != tr[:-1]]
-    return df, tr[new], np.cumsum(new) - 1
-
-
 def robust_localization_sd_um(
     tracks: pd.DataFrame,
     *,

@@ -438,22 +438,6 @@ def test_compiled_size_switch_path_equals_the_numpy_viterbi():
     np.testing.assert_array_equal(fast, ref)
 
 
-def test_ordering_shortcut_gives_what_a_sort_and_numpy_unique_give():
-    # Reference: pandas sort_values + numpy.unique(return_inverse=True), on a shuffled and an ordered table.
-    from msdkit.sizing import _ordered_with_track_index
-
-    g = np.random.default_rng()
-    t = pd.DataFrame({"track": np.repeat(g.permutation(50) * 3, 7), "frame": np.tile(np.arange(7), 50),
-                      "x_um": g.normal(size=350)})
-    for table in (t.sample(frac=1.0, random_state=1), t.sort_values(["track", "frame"])):
-        df, ids, inv = _ordered_with_track_index(table)
-        ref = table.sort_values(["track", "frame"], kind="stable")
-        ref_ids, ref_inv = np.unique(ref["track"].to_numpy(), return_inverse=True)
-        np.testing.assert_array_equal(df["x_um"].to_numpy(), ref["x_um"].to_numpy())
-        np.testing.assert_array_equal(ids, ref_ids)
-        np.testing.assert_array_equal(inv, ref_inv)
-
-
 def _bincount_step_sums(tracks, cols, centre):
     """The array computation the compiled pass replaces: numpy.diff of the positions and numpy.bincount per
     track, after a pandas sort by (track, frame) and numpy.unique."""
