@@ -368,6 +368,21 @@ def _step_log_densities(y, s2, D_states, dt, R, n_dims, limits: StepLimits):
     return k, theta, -k * np.log(theta) - special.gammaln(k)
 
 
+def _switch_runs(y, track_index, w_states):
+    """Return the set-up shared by both size-switch paths.
+
+    That is: steps as floats, the output mask, the switch weights (floored at 2 % spread evenly), and each
+    track's first step, number of steps and index.
+    """
+    y = np.asarray(y, dtype=float)
+    track_index = np.asarray(track_index)
+    w = np.asarray(w_states, dtype=float)
+    w = 0.98 * w / w.sum() + 0.02 / w.size
+    starts = np.flatnonzero(np.r_[True, track_index[1:] != track_index[:-1]]) if y.size else np.zeros(0, int)
+    lengths = np.diff(np.r_[starts, y.size])
+    return y, np.zeros(y.size, dtype=bool), w, starts, lengths, track_index[starts]
+
+
 def switch_points(y, track_index, s2_track, D_states, w_states, *, dt, R, n_dims, limits, p_switch):
     """Find the steps at which the most probable state path of each track jumps to another particle size.
 
@@ -375,16 +390,9 @@ def switch_points(y, track_index, s2_track, D_states, w_states, *, dt, R, n_dims
     """
     from . import _msd_kernels as kern
 
-    y = np.asarray(y, dtype=float)
-    track_index = np.asarray(track_index)
-    out = np.zeros(y.size, dtype=bool)
+    y, out, w, starts, lengths, owners = _switch_runs(y, track_index, w_states)
     if y.size == 0:
         return out
-    w = np.asarray(w_states, dtype=float)
-    w = 0.98 * w / w.sum() + 0.02 / w.size
-    starts = np.flatnonzero(np.r_[True, track_index[1:] != track_index[:-1]])
-    lengths = np.diff(np.r_[starts, y.size])
-    owners = track_index[starts]
     k, theta, c = _step_log_densities(None, np.asarray(s2_track, float)[owners], np.asarray(D_states, float),
                                       dt, R, n_dims, limits)
     kern.viterbi_switches(
@@ -421,18 +429,11 @@ def _switch_points_numpy(
     -------
     bool array, one per step: True where a new state (a new particle) starts at this step.
     """
-    y = np.asarray(y, dtype=float)
-    track_index = np.asarray(track_index)
-    out = np.zeros(y.size, dtype=bool)
+    y, out, w, starts, lengths, owners = _switch_runs(y, track_index, w_states)
     if y.size == 0:
         return out
-    w = np.asarray(w_states, dtype=float)
-    w = 0.98 * w / w.sum() + 0.02 / w.size
     log_w = np.log(w)
     log_p, log_q = np.log(p_switch), np.log1p(-p_switch)
-    starts = np.flatnonzero(np.r_[True, track_index[1:] != track_index[:-1]])
-    lengths = np.diff(np.r_[starts, y.size])
-    owners = track_index[starts]
     order = np.argsort(lengths, kind="stable")
     order = order[lengths[order] >= 2]
     for b0 in range(0, order.size, block):

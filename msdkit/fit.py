@@ -293,25 +293,6 @@ class _Shared:
         return y.copy(), npairs.copy()  # callers may write into theirs
 
 
-def _alpha_columns_shared(shared: _Shared, tracks, st, usable, sigma_um, *, dt, t_e, R, n_dims):
-    """:func:`msdkit.estimators.alpha_fits._alpha_columns` with its TA-MSD matrix from ``shared``."""
-    from .estimators import anomalous as an
-    from .estimators.alpha_fits import _alpha_lag_count, _track_alpha
-
-    lags = _ensemble_lags(st.n_steps[usable]) if sigma_um is None else None
-    need = _alpha_lag_count(st.n_steps[usable]).max(initial=1)
-    y_a, np_a = shared.msd_matrix(tracks, st, int(max(need, 1 if lags is None else lags[-1])), n_dims)
-    if sigma_um is None:
-        res = None if lags is None else _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e,
-                                                          n_dims=n_dims, rng=0, n_boot=0, lags=lags)
-        s_shared = float(res["theta"][2]) if res is not None and res["ok"] else np.nan
-    else:
-        s_shared = float(sigma_um) ** 2
-    alpha, a_se, K = _track_alpha(y_a, st, s_shared, dt=dt, exposure_s=t_e, R=R, n_dims=n_dims)
-    a_lo, a_hi = an.alpha_interval(alpha, a_se)
-    return alpha, a_lo, a_hi, K
-
-
 # public API
 # ----------------------------------------------------------------------------------------------------------
 
@@ -416,7 +397,8 @@ def fit_tracks(
     if not fit_alpha:
         alpha = a_lo = a_hi = K = np.full(n_tr, np.nan)
     else:
-        alpha_columns = _alpha_columns if _shared is None else partial(_alpha_columns_shared, _shared)
+        alpha_columns = (_alpha_columns if _shared is None
+                         else partial(_alpha_columns, msd_matrix=_shared.msd_matrix))
         alpha, a_lo, a_hi, K = alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R,
                                               n_dims=n_dims)
 

@@ -144,11 +144,16 @@ def _ensemble_lags(n_steps):
     return an.log_lags(n_max, ALPHA_N_LAGS) if n_max >= 4 else None
 
 
-def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims):
-    """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted)."""
+def _alpha_columns(tracks, st: Steps, usable, sigma_um, *, dt, t_e, R, n_dims, msd_matrix=None):
+    """Per-track alpha, its interval and K, with the shared localisation variance (given or fitted).
+
+    ``msd_matrix`` (default :func:`_msd_matrix`) gives the TA-MSD matrix; callers that already hold one pass
+    theirs.
+    """
     lags = _ensemble_lags(st.n_steps[usable]) if sigma_um is None else None
     need = _alpha_lag_count(st.n_steps[usable]).max(initial=1)
-    y_a, np_a = _msd_matrix(tracks, st, int(max(need, 1 if lags is None else lags[-1])), n_dims)
+    get_msd = msd_matrix or _msd_matrix
+    y_a, np_a = get_msd(tracks, st, int(max(need, 1 if lags is None else lags[-1])), n_dims)
     if sigma_um is None:
         res = None if lags is None else _sample_power_law(y_a[usable], np_a[usable], dt=dt, exposure_s=t_e,
                                                           n_dims=n_dims, rng=0, n_boot=0, lags=lags)
