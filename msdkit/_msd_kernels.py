@@ -549,6 +549,161 @@ def lag_square_sums(Q, n_lags):  # pragma: no cover - compiled
     return out
 
 
+# ------------------------------------------------------------------------------------------ step-model grid
+@numba.njit(cache=True)
+def best_noise_ratio(sc, norm, rank, idx, v3):  # pragma: no cover - compiled
+    """Best noise ratio of each track and shape on the likelihood grid, and the scales around it.
+
+    ``sc`` (c, S*R) holds the raw products P @ Qt of :func:`msdkit.motion_models._profile_grid` for c tracks,
+    S shapes and R noise ratios. The scale is max(sc / norm, 1e-300); the index of the smallest
+    scale x rank over R (the first one, or the first NaN, as :func:`numpy.argmin`) goes to ``idx`` (c, S) and
+    the scales at that index and its two neighbours (clipped at the grid ends) to ``v3`` (c, S, 3): the same
+    operations in the same order as the numpy version, so the same numbers bit for bit.
+    """
+    c = sc.shape[0]
+    S, R = rank.shape
+    for t in range(c):
+        for s in range(S):
+            base = s * R
+            best = 0.0
+            bi = 0
+            for r in range(R):
+                v = sc[t, base + r] / norm
+                if v < 1e-300:
+                    v = 1e-300
+                q = v * rank[s, r]
+                if q != q:  # NaN: numpy.argmin returns the first one
+                    bi = r
+                    break
+                if r == 0 or q < best:
+                    best = q
+                    bi = r
+            idx[t, s] = bi
+            for j in range(3):
+                r = min(max(bi + j - 1, 0), R - 1)
+                v = sc[t, base + r] / norm
+                if v < 1e-300:
+                    v = 1e-300
+                v3[t, s, j] = v
+
+
+@numba.njit(cache=True)
+def sum_middle_axis(x):  # pragma: no cover - compiled
+    """Sum of x (c, n, d) over its middle axis, (c, d), term after term in order.
+
+    numpy.sum(x, axis=1) adds along a non-contiguous axis in the same order.
+    """
+    c, n, d = x.shape
+    out = np.zeros((c, d))
+    for t in range(c):
+        for a in range(d):
+            s = 0.0
+            for i in range(n):
+                s += x[t, i, a]
+            out[t, a] = s
+    return out
+
+
+@numba.njit(cache=True)
+def power_with_free_mean(F, mean, H, P, Pd):  # pragma: no cover - compiled
+    """Periodograms summed over axes of transforms F (c, d, K) and of F − mean x H, into P and Pd (c, K).
+
+    F − mean x H is the transform of the centred series (H: the taper's transform). re² + im² per axis, axes
+    added in order (as numpy.sum along the axis of length d).
+    """
+    c, d, K = F.shape
+    for t in range(c):
+        for k in range(K):
+            s = 0.0
+            sd = 0.0
+            for a in range(d):
+                z = F[t, a, k]
+                re = z.real
+                im = z.imag
+                sq = re * re
+                sq += im * im
+                s = sq if a == 0 else s + sq
+                m = mean[t, a]
+                re = re - m * H[k].real
+                im = im - m * H[k].imag
+                sq = re * re
+                sq += im * im
+                sd = sq if a == 0 else sd + sq
+            P[t, k] = s
+            Pd[t, k] = sd
+
+
+# ------------------------------------------------------------------------------------- track step statistics
+@numba.njit(cache=True)
+def planar_step_statistics(X, out):  # pragma: no cover - compiled
+    """Lag-1 step correlation, non-Gaussian parameter, straightness, gyration asymmetry of 2D tracks.
+
+    X (g, n, 2) equal-length tracks, n ≥ 5; results into out (g, 4). The formulas of
+    ``classify._step_statistics_group`` with each sum taken term after term.
+    """
+    g, n, nd = X.shape
+    m = n - 1
+    inv_m = 1.0 / m
+    kk = 1.0 + 2.0 / nd
+    for t in range(g):
+        mx = 0.0
+        my = 0.0
+        px = 0.0
+        py = 0.0
+        for i in range(n):
+            px += X[t, i, 0]
+            py += X[t, i, 1]
+        for i in range(m):
+            mx += X[t, i + 1, 0] - X[t, i, 0]
+            my += X[t, i + 1, 1] - X[t, i, 1]
+        mx /= m
+        my /= m
+        px /= n
+        py /= n
+        num = 0.0
+        den = 0.0
+        s2 = 0.0
+        s4 = 0.0
+        path = 0.0
+        qx = 0.0
+        qy = 0.0
+        for i in range(m):
+            dx = X[t, i + 1, 0] - X[t, i, 0]
+            dy = X[t, i + 1, 1] - X[t, i, 1]
+            cx = dx - mx
+            cy = dy - my
+            den += cx * cx + cy * cy
+            if i > 0:
+                num += cx * qx + cy * qy
+            qx = cx
+            qy = cy
+            r2 = dx * dx + dy * dy
+            s2 += r2 * inv_m
+            s4 += r2 * r2
+            path += np.sqrt(r2)
+        m4 = s4 / m
+        ex = X[t, n - 1, 0] - X[t, 0, 0]
+        ey = X[t, n - 1, 1] - X[t, 0, 1]
+        end = np.sqrt(ex * ex + ey * ey)
+        a = 0.0
+        b = 0.0
+        e = 0.0
+        for i in range(n):
+            x = X[t, i, 0] - px
+            y = X[t, i, 1] - py
+            a += x * x
+            b += x * y
+            e += y * y
+        a /= m
+        b /= m
+        e /= m
+        out[t, 0] = num / den if den > 0 else np.nan
+        out[t, 1] = m4 / (kk * s2 * s2) - 1.0 if s2 > 0 else np.nan
+        out[t, 2] = end / path if path > 0 else np.nan
+        evs = a + e
+        out[t, 3] = ((a - e) ** 2 + 4.0 * b * b) / (evs * evs) if evs > 0 else np.nan
+
+
 # ------------------------------------------------------------------------------------------ ensemble MSD
 @numba.njit(cache=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled

@@ -199,6 +199,11 @@ def _step_statistics_group(X: np.ndarray) -> np.ndarray:
     out = np.full((g, 4), np.nan)
     if g == 0 or n - 1 < 3:
         return out
+    if nd == 2 and X.dtype == np.float64:  # one compiled pass per track, same formulas (tested against numpy)
+        from ._msd_kernels import planar_step_statistics
+
+        planar_step_statistics(X, out)
+        return out
     d = np.diff(X, axis=1)
     # means over the track as products with a vector of ones (a matrix product is much faster than a
     # reduction along the middle axis; same numbers up to the order of the sum)

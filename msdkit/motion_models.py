@@ -238,22 +238,20 @@ def _periodograms_with_free_mean(steps: np.ndarray, taper: np.ndarray) -> tuple[
 
     The transform is linear, so that of (steps − mean) is F − mean · H with H the transform of the taper.
     """
+    import scipy.fft  # the same pocketfft transforms as numpy.fft (same numbers), with less overhead per call
+
+    from ._msd_kernels import power_with_free_mean
+
     T, N, d = steps.shape
     H = np.fft.rfft(taper)
     P = np.empty((T, N // 2 + 1))
     Pd = np.empty((T, N // 2 + 1))
     chunk = max(1, 65536 // max(N * d, 1))
-    def power(F, out):  # Σ_axes (re² + im²), written into out with one temporary
-        sq = F.real * F.real
-        sq += F.imag * F.imag
-        np.sum(sq, axis=1, out=out)
-
     for a in range(0, T, chunk):
         blk = steps[a : a + chunk].transpose(0, 2, 1)
-        F = np.fft.rfft(blk * taper, axis=-1)
-        power(F, P[a : a + chunk])
-        F -= blk.mean(axis=-1, keepdims=True) * H
-        power(F, Pd[a : a + chunk])
+        F = scipy.fft.rfft(blk * taper, axis=-1)
+        # Σ_axes |F|² and Σ_axes |F − mean·H|² in one compiled pass (numpy's operations, in order)
+        power_with_free_mean(F, blk.mean(axis=-1), H, P[a : a + chunk], Pd[a : a + chunk])
     return P, Pd
 
 
@@ -390,21 +388,20 @@ def _profile_grid(
     scale = np.empty((T, S))
     srows = np.arange(S)[None, :]
     step = max(1, _GRID_CHUNK_ELEMENTS // (S * R))
+    from ._msd_kernels import best_noise_ratio
+
+    v3 = np.empty((T, S, 3))
     for a in range(0, T, step):
         z = min(T, a + step)
-        sc = (P[a:z] @ Qt).reshape(z - a, S, R)
-        sc /= norm
-        np.maximum(sc, 1e-300, out=sc)
-        i = np.argmin(sc * rank, axis=-1)  # (c, S)
-        idx[a:z] = i
-        for j in range(3):
-            r = np.clip(i + (j - 1), 0, R - 1)
-            v = np.take_along_axis(sc, r[..., None], -1)[..., 0]
-            if j == 1:
-                scale[a:z] = v
-            ok = valid[srows, r]
-            with np.errstate(divide="ignore"):
-                ll3[a:z, :, j] = np.where(ok, -n_axes * (logdet[srows, r] + W * np.log(v) + W), -np.inf)
+        # scale = max(product / norm, 1e-300), best ratio by argmin(scale x rank) and the scales at it and
+        # its neighbours, in one compiled pass over the chunk's products (same operations as numpy's)
+        best_noise_ratio(P[a:z] @ Qt, norm, rank, idx[a:z], v3[a:z])
+    scale[:] = v3[..., 1]
+    for j in range(3):
+        r = np.clip(idx + (j - 1), 0, R - 1)
+        ok = valid[srows, r]
+        with np.errstate(divide="ignore"):
+            ll3[..., j] = np.where(ok, -n_axes * (logdet[srows, r] + W * np.log(v3[..., j]) + W), -np.inf)
     best = ll3[..., 1]
     interior = (idx >= 1) & (idx <= R - 2)
     off, val = _parabola(ll3[..., 0], best, ll3[..., 2])
@@ -438,6 +435,19 @@ class StepFits:
     dir_noise: np.ndarray
     end_to_end: np.ndarray  # (T, n_axes) sum of steps
     periodogram: np.ndarray | None = None  # (T, N//2 + 1) tapered periodogram summed over axes (bank taper)
+
+
+def _end_to_end(steps: np.ndarray) -> np.ndarray:
+    """Sum of each track's steps, (T, N, d) → (T, d): numpy.sum(steps, axis=1), compiled for d ≥ 2.
+
+    numpy adds along a middle axis term after term; the compiled loop does the same, without numpy's slow
+    strided reduction (for d = 1 numpy sums pairwise along the contiguous axis, so it keeps that case).
+    """
+    if steps.ndim == 3 and steps.shape[2] >= 2 and steps.flags.c_contiguous and steps.dtype == np.float64:
+        from ._msd_kernels import sum_middle_axis
+
+        return sum_middle_axis(steps)
+    return steps.sum(axis=1)
 
 
 def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float = 1.920729) -> StepFits:
@@ -528,7 +538,7 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
         conf_noise=conf_noise,
         dir_scale=dir_scale,
         dir_noise=dir_noise,
-        end_to_end=steps.sum(axis=1),
+        end_to_end=_end_to_end(steps),
         periodogram=P,
     )
 

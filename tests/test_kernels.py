@@ -1,0 +1,131 @@
+"""Compiled fast paths (msdkit._msd_kernels) give what the plain numpy expressions they replace give.
+
+Each check names its reference: a numpy expression written out here (numpy is the general-purpose reference
+library), compared bit for bit where the compiled loop does the same operations in the same order, and to
+1e-10 relative (1e-14 absolute for values that cancel to near 0) where only the order of a sum differs.
+"""
+
+import numpy as np
+import pytest
+
+from msdkit import _msd_kernels as k
+from msdkit import motion_models as mm
+
+
+def _grid_reference(P, w, shapes, noise, n_axes, drop_zero=False):
+    """The numpy chunk loop of motion_models._profile_grid: best noise ratio, scale and log-likelihoods."""
+    valid, logdet, Q = mm._grid_terms(w, shapes, noise, drop_zero)
+    S, R, F = Q.shape
+    Qt = np.ascontiguousarray(Q.reshape(S * R, F).T)
+    W = float(w.sum())
+    low = np.min(np.where(valid, logdet, np.inf), axis=1, keepdims=True)
+    low = np.where(np.isfinite(low), low, 0.0)
+    rank = np.where(valid, np.exp((np.where(valid, logdet, 0.0) - low) / W), np.inf)
+    sc = (P @ Qt).reshape(P.shape[0], S, R)
+    sc /= n_axes * W
+    np.maximum(sc, 1e-300, out=sc)
+    i = np.argmin(sc * rank, axis=-1)
+    srows = np.arange(S)[None, :]
+    ll3 = np.empty((P.shape[0], S, 3))
+    for j in range(3):
+        r = np.clip(i + (j - 1), 0, R - 1)
+        v = np.take_along_axis(sc, r[..., None], -1)[..., 0]
+        with np.errstate(divide="ignore"):
+            ll3[..., j] = np.where(valid[srows, r], -n_axes * (logdet[srows, r] + W * np.log(v) + W), -np.inf)
+    scale = np.take_along_axis(sc, i[..., None], -1)[..., 0]
+    return i, scale, ll3
+
+
+@pytest.mark.parametrize("n_steps", [9, 40, 57])
+def test_compiled_noise_ratio_search_equals_numpy_argmin_bit_for_bit(n_steps):
+    # Reference: numpy.argmin / take_along_axis / log on the full chunk (the former numpy code path).
+    g = np.random.default_rng(n_steps)
+    steps = g.normal(size=(400, n_steps, 2)) * 0.1 + g.normal(size=(400, 1, 2)) * 0.2
+    bank = mm._bank(n_steps, 0.4)
+    P = mm.periodograms(steps, bank.taper)
+    P[5] = 0.0  # a track standing still: every scale at the 1e-300 floor, ties resolved to the first index
+    for shapes, dz in ((bank.fbm, False), (bank.conf, False), (bank.fbm[18:19], True)):
+        best, ratio, idx, scale = mm._profile_grid(P, bank.weights, shapes, bank.noise, 2, dz)
+        i_ref, scale_ref, ll3 = _grid_reference(P, bank.weights, shapes, bank.noise, 2, dz)
+        np.testing.assert_array_equal(idx, i_ref)
+        np.testing.assert_array_equal(scale, scale_ref)
+        interior = (idx >= 1) & (idx <= mm.NOISE_RATIO_GRID.size - 2)
+        refined = mm._parabola(*np.moveaxis(ll3, -1, 0))[1]
+        np.testing.assert_array_equal(np.where(interior, refined, ll3[..., 1]), best)
+
+
+def test_compiled_noise_ratio_search_takes_the_first_nan_as_numpy_argmin():
+    # Reference: numpy.argmin, which returns the position of the first NaN when there is one.
+    rank = np.ones((2, 5))
+    sc = np.array([[3.0, 1.0, np.nan, 0.5, 2.0, 4.0, 4.0, 1.0, 1.0, 9.0]])
+    idx = np.empty((1, 2), np.int64)
+    v3 = np.empty((1, 2, 3))
+    k.best_noise_ratio(sc, 1.0, rank, idx, v3)
+    np.testing.assert_array_equal(idx[0], np.argmin(sc.reshape(2, 5), axis=-1))
+    np.testing.assert_array_equal(v3[0, 1], [4.0, 1.0, 1.0])
+
+
+@pytest.mark.parametrize("n_axes", [1, 2, 3])
+def test_periodograms_with_free_mean_equal_the_numpy_expressions_bit_for_bit(n_axes):
+    # Reference: numpy.fft.rfft of the tapered steps, Σ_axes (re² + im²), and the same after F − mean·H.
+    g = np.random.default_rng(n_axes)
+    steps = g.normal(size=(150, 57, n_axes)) + 2.0
+    taper = mm.split_cosine_taper(57)
+    P, Pd = mm._periodograms_with_free_mean(steps, taper)
+    blk = steps.transpose(0, 2, 1)
+    F = np.fft.rfft(blk * taper, axis=-1)
+    sq = F.real * F.real
+    sq += F.imag * F.imag
+    np.testing.assert_array_equal(P, np.sum(sq, axis=1))
+    F -= blk.mean(axis=-1, keepdims=True) * np.fft.rfft(taper)
+    sq = F.real * F.real
+    sq += F.imag * F.imag
+    np.testing.assert_array_equal(Pd, np.sum(sq, axis=1))
+
+
+@pytest.mark.parametrize("shape", [(40, 499, 2), (30, 7, 3), (6, 300, 1), (0, 5, 2)])
+def test_end_to_end_sums_equal_numpy_sum(shape):
+    # Reference: numpy.sum(steps, axis=1).
+    g = np.random.default_rng(0)
+    steps = g.normal(size=shape) * 10.0 ** g.uniform(-4, 4, size=shape)
+    np.testing.assert_array_equal(mm._end_to_end(steps), steps.sum(axis=1))
+
+
+def test_fit_step_models_is_unchanged_by_the_compiled_paths(monkeypatch):
+    # Reference: fit_step_models with numpy's sum for the end-to-end steps (the compiled helper switched off).
+    g = np.random.default_rng()
+    steps = g.normal(size=(200, 49, 2)) * 0.1 + g.normal(size=(200, 1, 2)) * 0.05
+    fast = mm.fit_step_models(steps, exposure_ratio=0.5)
+    monkeypatch.setattr(mm, "_end_to_end", lambda s: s.sum(axis=1))
+    slow = mm.fit_step_models(steps, exposure_ratio=0.5)
+    for name in fast.__dataclass_fields__:
+        np.testing.assert_array_equal(getattr(fast, name), getattr(slow, name), err_msg=name)
+
+
+def _step_statistics_numpy(X):
+    """The numpy formulas of classify._step_statistics_group for 2D tracks (matrix products and einsum)."""
+    g, n, nd = X.shape
+    d = np.diff(X, axis=1)
+    dc = d - d.mean(axis=1, keepdims=True)
+    num = np.einsum("gij,gij->g", dc[:, 1:], dc[:, :-1])
+    den = np.einsum("gij,gij->g", dc, dc)
+    r2 = np.einsum("gij,gij->gi", d, d)
+    m2 = r2.mean(axis=1)
+    m4 = (r2 * r2).mean(axis=1)
+    path = np.sqrt(r2).sum(axis=1)
+    end = np.linalg.norm(X[:, -1] - X[:, 0], axis=1)
+    c = np.stack([np.cov(x.T) for x in X])
+    ev = np.linalg.eigvalsh(c)
+    return np.column_stack([num / den, m4 / ((1.0 + 2.0 / nd) * m2 * m2) - 1.0, end / path,
+                            ((ev[:, -1] - ev[:, 0]) / (ev[:, -1] + ev[:, 0])) ** 2])
+
+
+def test_compiled_step_statistics_equal_the_numpy_formulas():
+    # Reference: numpy.diff / einsum / numpy.cov / numpy.linalg.eigvalsh per group (sums in another order:
+    # 1e-10 relative, 1e-14 absolute for the statistics that are near 0 for Brownian steps).
+    from msdkit.classify import _step_statistics_group
+
+    g = np.random.default_rng()
+    X = np.cumsum(g.normal(size=(300, 60, 2)), axis=1) + g.normal(size=(300, 1, 2)) * 50.0
+    X[:10] += np.arange(60)[None, :, None] * 0.7  # directed tracks: straightness near 1
+    np.testing.assert_allclose(_step_statistics_group(X), _step_statistics_numpy(X), rtol=1e-10, atol=1e-14)
