@@ -129,3 +129,22 @@ def test_compiled_step_statistics_equal_the_numpy_formulas():
     X = np.cumsum(g.normal(size=(300, 60, 2)), axis=1) + g.normal(size=(300, 1, 2)) * 50.0
     X[:10] += np.arange(60)[None, :, None] * 0.7  # directed tracks: straightness near 1
     np.testing.assert_allclose(_step_statistics_group(X), _step_statistics_numpy(X), rtol=1e-10, atol=1e-14)
+
+
+@pytest.mark.parametrize(("n", "n_lags", "n_par"), [(1, 3, 2), (60, 10, 2), (200, 10, 3)])
+def test_batched_quadratic_forms_equal_numpy_einsum_bit_for_bit(n, n_lags, n_par):
+    # Reference: numpy.einsum (no optimisation) on the rows of C that the subset needs, as the Gauss-Newton
+    # fits of msdkit.estimators.anomalous computed them.
+    g = np.random.default_rng(n)
+    A = g.normal(size=(n + 7, n_lags, n_lags))
+    C = A @ A.transpose(0, 2, 1)
+    rows = np.sort(g.choice(n + 7, n, replace=False))
+    r = g.normal(size=(n, n_lags))
+    J = g.normal(size=(n, n_lags, n_par))
+    np.testing.assert_array_equal(k.rows_quadratic_form(r, C, rows), np.einsum("nl,nlm,nm->n", r, C[rows], r))
+    np.testing.assert_array_equal(k.rows_jt_c(J, C, rows), np.einsum("nlp,nlm->npm", J, C[rows]))
+    np.testing.assert_array_equal(k.sandwich(J, C[rows]), np.einsum("nlp,nlm,nmq->npq", J, C[rows], J))
+    Cb = np.broadcast_to(C[0], (n, n_lags, n_lags))  # one weight matrix for all rows (read-only view)
+    np.testing.assert_array_equal(k.sandwich(J, Cb), np.einsum("nlp,nlm,nmq->npq", J, Cb, J))
+    np.testing.assert_array_equal(k.rows_quadratic_form(r, Cb, np.arange(n)),
+                                  np.einsum("nl,nlm,nm->n", r, Cb, r))

@@ -99,6 +99,8 @@ def _track_alpha(y, st: Steps, s_shared, *, dt, exposure_s, R, n_dims):
 
 def _fit_alpha_block(y, st, idx, lags, s_shared, alpha, se, K, *, dt, exposure_s, R, n_dims, blur):
     """Per-track alpha for one block of tracks sharing their lags (results written into alpha, se, K)."""
+    from .._msd_kernels import sandwich
+
     Y = y[idx][:, lags - 1]
     good = np.all(np.isfinite(Y), axis=1)
     idx, Y = idx[good], Y[good]
@@ -125,7 +127,7 @@ def _fit_alpha_block(y, st, idx, lags, s_shared, alpha, se, K, *, dt, exposure_s
             theta, _, ok = an.gls_power_law(Y, lags * dt, Cinv, exposure_s=exposure_s, s=s_arr,
                                             theta0=theta, n_iter=20)
     _, J = an._model(theta, an._Lags(lags * dt, exposure_s), s_arr[:, None])
-    H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
+    H = sandwich(J, Cinv)  # numpy.einsum("nlp,nlm,nmq->npq", J, Cinv, J), the same numbers (compiled)
     with np.errstate(divide="ignore", invalid="ignore"):
         var_alpha = H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
     alpha[idx] = np.where(ok, theta[:, 1], np.nan)

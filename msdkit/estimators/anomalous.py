@@ -147,10 +147,13 @@ def gls_power_law(y, t, Cinv, *, exposure_s: float, s=None, theta0=None, n_iter:
     def mu_J(th, rows):
         return _model(th, lags, th[:, 2:3] if fit_s else s_all[rows])
 
+    # compiled batched products, bit for bit numpy.einsum's (msdkit._msd_kernels; no copies of Cinv's rows)
+    from .._msd_kernels import rows_jt_c, rows_quadratic_form, sandwich
+
     def cost(th, rows):
         m, _ = mu_J(th, rows)
         r = y[rows] - m
-        return np.einsum("nl,nlm,nm->n", r, Cinv[rows], r)
+        return rows_quadratic_form(r, Cinv, rows)  # einsum("nl,nlm,nm->n", r, Cinv[rows], r)
 
     ok = np.zeros(n, bool)
     last_step = np.zeros(n)
@@ -161,8 +164,7 @@ def gls_power_law(y, t, Cinv, *, exposure_s: float, s=None, theta0=None, n_iter:
         th = theta[active]
         mu, J = mu_J(th, active)
         r = y[active] - mu
-        W = Cinv[active]
-        JtW = np.einsum("nlp,nlm->npm", J, W)
+        JtW = rows_jt_c(J, Cinv, active)  # einsum("nlp,nlm->npm", J, Cinv[active])
         H = JtW @ J
         grad = np.einsum("npm,nm->np", JtW, r)
         H = H + np.eye(H.shape[1]) * (1e-12 * np.abs(H).max(axis=(1, 2)) + 1e-300)[:, None, None]
@@ -175,7 +177,7 @@ def gls_power_law(y, t, Cinv, *, exposure_s: float, s=None, theta0=None, n_iter:
         step[:, 1] = np.clip(step[:, 1], -0.5, 0.5)
         new = th + step
         new[:, 1] = np.clip(new[:, 1], *ALPHA_BOUNDS)
-        c0 = np.einsum("nl,nlm,nm->n", r, W, r)
+        c0 = rows_quadratic_form(r, Cinv, active)
         c1 = cost(new, active)
         for _h in range(12):
             worse = np.flatnonzero(~(c1 <= c0 * (1 + 1e-12)))
@@ -192,7 +194,7 @@ def gls_power_law(y, t, Cinv, *, exposure_s: float, s=None, theta0=None, n_iter:
         ok[active[done]] = True
         active = active[~done]
     _, J = mu_J(theta, np.arange(n))
-    H = np.einsum("nlp,nlm,nmq->npq", J, Cinv, J)
+    H = sandwich(J, Cinv)  # einsum("nlp,nlm,nmq->npq", J, Cinv, J)
     cov = np.full_like(H, np.nan)
     good = np.all(np.isfinite(H), axis=(1, 2)) & (np.abs(np.linalg.det(H)) > 0)
     if good.any():
