@@ -18,9 +18,14 @@ def _plt():
     return plt
 
 
-def _save(fig, path: Path | None) -> bytes:
+def _save(fig, path: Path | None, *, tight: bool = True) -> bytes:
+    """PNG bytes of the figure (written atomically to ``path`` when given).
+
+    ``tight`` crops to the drawn content, which draws the figure twice; figures laid out with fixed margins
+    pass False and are drawn once.
+    """
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    fig.savefig(buf, format="png", dpi=90, **({"bbox_inches": "tight"} if tight else {}))
     _plt().close(fig)
     data = buf.getvalue()
     if path is not None:
@@ -28,6 +33,20 @@ def _save(fig, path: Path | None) -> bytes:
 
         write_bytes_atomic(data, path)
     return data
+
+
+def _first_tracks(tracks: pd.DataFrame, n: int) -> pd.DataFrame:
+    """Rows of the first ``n`` tracks in order of first appearance (``tracks[tracks.track.isin(first n)]``).
+
+    When the table is sorted by track (as the pipeline leaves it) those rows are its first rows: only that
+    prefix is read, not the whole (possibly 10-million-row) table.
+    """
+    t = tracks["track"].to_numpy()
+    if t.size and t.dtype.kind in "iu" and bool(np.all(t[1:] >= t[:-1])):
+        starts = np.flatnonzero(np.r_[True, t[1:] != t[:-1]])
+        stop = int(starts[n]) if starts.size > n else t.size
+        return tracks.iloc[:stop]
+    return tracks[tracks["track"].isin(tracks["track"].unique()[:n])]
 
 
 def stack_overview_png(
@@ -43,13 +62,12 @@ def stack_overview_png(
     fig, axes = plt.subplots(1, 4, figsize=(17, 3.9))
     ax = axes[0]
     classes = track_fits.set_index("track")["motion_class"] if "motion_class" in track_fits else None
-    palette = {"normal": "#4c72b0", "subdiffusive": "#c44e52", "superdiffusive": "#dd8452", "confined": "#8172b3",
-               "directed": "#55a868", "immobile": "#7f7f7f", "undetermined": "#bbbbbb"}
+    palette = {"normal": "#4c72b0", "subdiffusive": "#c44e52", "superdiffusive": "#dd8452",
+               "confined": "#8172b3", "directed": "#55a868", "immobile": "#7f7f7f", "undetermined": "#bbbbbb"}
     from matplotlib.collections import LineCollection
 
-    shown = tracks["track"].unique()[:400]
     segments, colours = [], []
-    for tid, g in tracks[tracks["track"].isin(shown)].groupby("track", sort=False):
+    for tid, g in _first_tracks(tracks, 400).groupby("track", sort=False):
         cls = classes.get(tid, "undetermined") if classes is not None else "normal"
         segments.append(np.column_stack([g["x_um"].to_numpy(float), g["y_um"].to_numpy(float)]))
         colours.append(palette.get(cls, "#4c72b0"))
@@ -58,20 +76,21 @@ def stack_overview_png(
         ax.autoscale_view()
     ax.set_aspect("equal", adjustable="datalim")
     ax.invert_yaxis()
-    ax.set(xlabel="x (µm)", ylabel="y (µm)", title=f"{summary.get('n_tracks', '?')} tracks (colour = motion class)")
+    ax.set(xlabel="x (µm)", ylabel="y (µm)",
+           title=f"{summary.get('n_tracks', '?')} tracks (colour = motion class)")
 
     ax = axes[1]
     e = ensemble[ensemble["msd_um2"] > 0]
     ax.errorbar(e["lag_s"], e["msd_um2"], yerr=e["sem_um2"], fmt="o", ms=3, lw=0.8, label="ensemble MSD")
     D = summary.get("D_um2_s")
     if D and np.isfinite(D) and D > 0 and len(e):
-        dt = summary.get("frame_interval_s") or e["lag_s"].min()
         te = summary.get("exposure_s") or 0.0
         sig = summary.get("localization_sd_um") or 0.0
         t = np.linspace(e["lag_s"].min(), e["lag_s"].max(), 100)
         model = 4 * D * (t - te / 3.0) + 4 * sig**2
         ax.plot(t[model > 0], model[model > 0], "k-", lw=1, label=f"4D(t − t_E/3) + 4σ², D = {D:.3g} µm²/s")
-    ax.set(xscale="log", yscale="log", xlabel="lag (s)", ylabel="MSD (µm²)", title="mean squared displacement")
+    ax.set(xscale="log", yscale="log", xlabel="lag (s)", ylabel="MSD (µm²)",
+           title="mean squared displacement")
     ax.legend(fontsize=7)
 
     ax = axes[2]
@@ -97,7 +116,9 @@ def stack_overview_png(
         ax.legend(fontsize=7)
     ax.set(xlabel="hydrodynamic diameter (nm)", ylabel="fraction per bin", title="size distribution")
     fig.suptitle(str(summary.get("stack", "")), fontsize=10)
-    return _save(fig, path)
+    # fixed margins (room for the tick labels, axis labels and titles) so that the figure is drawn once
+    fig.subplots_adjust(left=0.045, right=0.99, bottom=0.15, top=0.86, wspace=0.3)
+    return _save(fig, path, tight=False)
 
 
 def write_stack_figures(stack_dir: Path, result) -> None:
