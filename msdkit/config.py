@@ -211,6 +211,10 @@ class AnalysisConfig(BaseModel):
     # shortest tracks used for the size distribution (movies: linked down to this length; its kernel takes
     # each track's own number of steps, and short tracks are mostly the small, fast particles)
     size_min_track_points: Annotated[int, Field(ge=2)] = 2
+    # shortest tracks pooled into the sample D of a movie (at least 3: the covariance-based estimator needs
+    # two steps); the long-track filter linking.min_track_points keeps the slow, sharp particles that stayed in
+    # focus and the tracks lengthened by wrong joins, so pooling the short ones too is less biased
+    sample_min_track_points: Annotated[int, Field(ge=3)] = 3
     seed: int = 0
 
 

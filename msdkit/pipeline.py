@@ -19,7 +19,7 @@ import pandas as pd
 
 from . import schema
 from ._version import __version__
-from .errors import InputError, expected_got
+from .errors import FitError, InputError, expected_got
 
 log = logging.getLogger(__name__)
 
@@ -119,6 +119,23 @@ def _alpha_given_sample(track_fits: pd.DataFrame) -> pd.DataFrame:
     return tf
 
 
+def _with_min_points(tracks: pd.DataFrame, min_points: int) -> pd.DataFrame:
+    counts = tracks.groupby("track")["frame"].transform("size").to_numpy()
+    return tracks[counts >= min_points].reset_index(drop=True)
+
+
+def _sample_D_fit(tracks: pd.DataFrame, *, estimator: str, seed: int, fallback, **kw):
+    """Sample fit of ``tracks`` (``fallback`` when no track has two steps between consecutive frames)."""
+    from . import fit
+
+    if tracks.empty:
+        return fallback
+    try:
+        return fit.fit_sample(_in_track_frame_order(tracks), None, method=estimator, rng=seed, **kw)
+    except FitError:
+        return fallback
+
+
 def analyze_tracks(
     tracks: pd.DataFrame,
     *,
@@ -136,6 +153,7 @@ def analyze_tracks(
     seed: int = 0,
     sizing_tracks: pd.DataFrame | None = None,
     step_limits: dict[str, Any] | None = None,
+    sample_tracks: pd.DataFrame | None = None,
 ) -> AnalysisResult:
     """Analyse a track table: drift, MSD, D and alpha with intervals, motion classes, flags and sizes.
 
@@ -154,6 +172,11 @@ def analyze_tracks(
         ``min_track_points`` allows, since the size kernel takes each track's own length.
     step_limits : dict, optional
         ``max_step_um`` / ``step_loss_per_um2`` of the linking (:func:`msdkit.sizing.linking_step_limits`).
+    sample_tracks : DataFrame, optional
+        Tracks pooled into the sample D and its interval (default: the analysed tracks). Movies pass every
+        track of ``analysis.sample_min_track_points`` (3) or more points: the long-track filter selects
+        particles that stayed sharp and in focus and tracks lengthened by wrong joins, while short tracks
+        carry most of the steps of fast, dim particles. alpha, classes and per-track fits keep the analysed tracks.
 
     Returns
     -------
@@ -183,6 +206,8 @@ def analyze_tracks(
         tracks = drift.remove_drift(tracks, drift_est)
         if sizing_tracks is not None:
             sizing_tracks = drift.remove_drift(sizing_tracks, drift_est)
+        if sample_tracks is not None:
+            sample_tracks = drift.remove_drift(sample_tracks, drift_est)
         corrected = True
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
@@ -191,6 +216,9 @@ def analyze_tracks(
     track_fits = fit.fit_tracks(tracks, method=estimator, _shared=shared, **kw)
     sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, _shared=shared, **kw)
     del shared
+    D_fit = sample_fit
+    if sample_tracks is not None:
+        D_fit = _sample_D_fit(sample_tracks, estimator=estimator, seed=seed, fallback=sample_fit, **kw)
     ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
     if max_lag_frames is None and len(ens):
         # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
@@ -229,8 +257,8 @@ def analyze_tracks(
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
     track_fits = _alpha_given_sample(track_fits)
 
-    sample_D = float(sample_fit.D_um2_s)
-    D_lo, D_hi = (float(v) for v in sample_fit.D_ci95_um2_s)
+    sample_D = float(D_fit.D_um2_s)
+    D_lo, D_hi = (float(v) for v in D_fit.D_ci95_um2_s)
     size = hydro.stokes_einstein_size(
         sample_D, D_ci95_um2_s=(D_lo, D_hi), temperature_c=temperature_c, temperature_sd_c=temperature_sd_c,
         medium=medium, wall_distance_um=wall_distance_um,
@@ -255,11 +283,13 @@ def analyze_tracks(
         "drift_um_s": drift_v,
         "drift_corrected": corrected,
         "localization_sd_um": _finite_or_none(getattr(sample_fit, "sigma_um", None)),
-        "estimator": getattr(sample_fit, "method", estimator),
+        "estimator": getattr(D_fit, "method", estimator),
+        "n_tracks_D": int(getattr(D_fit, "n_tracks", n_tracks)),
         "frame_interval_s": frame_interval_s,
         "exposure_s": exposure_s,
         "motion": _as_dict(motion),
         "sample_fit": _as_dict(sample_fit),
+        "sample_D_fit": _as_dict(D_fit),
         "size_distribution": dist.to_dict() if hasattr(dist, "to_dict") else {},
     }
     return AnalysisResult(
@@ -318,7 +348,8 @@ def movie_to_tracks(
             if progress is not None:
                 progress(done, n_frames)
     spots = pd.concat(chunks, ignore_index=True) if chunks else schema.empty_frame(schema.SPOT_COLUMNS)
-    size_min_points = min(lnk.min_track_points, cfg.analysis.size_min_track_points)
+    size_min_points = min(lnk.min_track_points, cfg.analysis.size_min_track_points,
+                          cfg.analysis.sample_min_track_points)
     tracks_px, link_settings = link.link_spots(
         spots, max_step_px=lnk.max_step_px, max_gap_frames=lnk.max_gap_frames,
         min_track_points=size_min_points, frame_interval_s=dt, acceptance_sd=lnk.acceptance_sd,
@@ -424,11 +455,11 @@ def process_input(
         tracks, used = movie_to_tracks(input_path, cfg, progress=progress)
     acq = used["acquisition"]
     an, smp = cfg.analysis, cfg.sample
-    sizing_tracks, step_limits = None, None
-    if "sizing" in used:  # a movie: short tracks were kept for the size distribution
-        sizing_tracks = tracks
-        counts = tracks.groupby("track")["frame"].transform("size")
-        tracks = tracks[counts >= cfg.linking.min_track_points].reset_index(drop=True)
+    sizing_tracks, step_limits, sample_tracks = None, None, None
+    if "sizing" in used:  # a movie: short tracks were kept for the size distribution and the sample D
+        sizing_tracks = _with_min_points(tracks, an.size_min_track_points)
+        sample_tracks = _with_min_points(tracks, an.sample_min_track_points)
+        tracks = _with_min_points(tracks, cfg.linking.min_track_points)
         step_limits = {k: used["sizing"][k] for k in ("max_step_um", "step_loss_per_um2")}
     result = analyze_tracks(
         tracks, frame_interval_s=acq["frame_interval_s"], exposure_s=acq["exposure_s"],
@@ -437,7 +468,7 @@ def process_input(
         wall_distance_um=smp.wall_distance_um, n_dims=an.n_dims, estimator=an.estimator,
         max_lag_frames=an.max_lag_frames, drift_correction=an.drift_correction,
         min_track_points=an.min_track_points, seed=an.seed, sizing_tracks=sizing_tracks,
-        step_limits=step_limits,
+        step_limits=step_limits, sample_tracks=sample_tracks,
     )
     provenance = {
         "msdkit_version": __version__,

@@ -1,0 +1,76 @@
+"""The sample D of a movie pools every track of >= 3 points (analysis.sample_min_track_points).
+
+Check values: the covariance-based estimator written out from its published formula (Vestergaard, Blainey &
+Flyvbjerg 2014, Phys. Rev. E 89:022726, eq. 14 with R = 0 for instantaneous exposure:
+D = <dx^2> / (2 dt) + <dx_n dx_n+1> / dt, pooled over all steps and step pairs of all tracks).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from pydantic import ValidationError
+
+from msdkit.config import Config
+from msdkit.pipeline import analyze_tracks
+from msdkit.simulate import brownian_positions, positions_to_tracks
+
+DT = 0.05
+
+
+def _tracks(seed: int) -> pd.DataFrame:
+    """300 short tracks (3-9 points) of a fast kind and 30 long (60 points) of a slow kind."""
+    g = np.random.default_rng(seed)
+    fast = brownian_positions(300, 9, D_um2_s=2.0, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
+    slow = brownian_positions(30, 60, D_um2_s=0.5, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
+    short = positions_to_tracks(fast, frame_interval_s=DT, lengths=g.integers(3, 10, 300))
+    long = positions_to_tracks(slow, frame_interval_s=DT, first_track_id=1000)
+    return pd.concat([short, long], ignore_index=True)
+
+
+def _pooled_covariance_D(tracks: pd.DataFrame) -> float:
+    sq = cross = n_sq = n_cross = 0.0
+    for _, t in tracks.groupby("track"):
+        xy = t.sort_values("frame")[["x_um", "y_um"]].to_numpy()
+        d = np.diff(xy, axis=0)
+        sq += float((d**2).sum())
+        n_sq += d.size
+        cross += float((d[:-1] * d[1:]).sum())
+        n_cross += d[:-1].size
+    return sq / n_sq / (2 * DT) + cross / n_cross / DT
+
+
+@pytest.mark.parametrize("seed", [0])
+def test_movie_sample_D_pools_every_track_of_three_or_more_points(seed):
+    all_tracks = _tracks(seed)
+    counts = all_tracks.groupby("track")["frame"].transform("size")
+    long = all_tracks[counts >= 10].reset_index(drop=True)
+    res = analyze_tracks(long, frame_interval_s=DT, exposure_s=0.0, drift_correction=False,
+                         estimator="covariance", sizing_tracks=all_tracks,
+                         sample_tracks=all_tracks[counts >= 3].reset_index(drop=True))
+    s = res.summary
+    assert s["n_tracks"] == 30
+    assert s["n_tracks_D"] == all_tracks["track"].nunique()
+    assert s["D_um2_s"] == pytest.approx(_pooled_covariance_D(all_tracks), rel=1e-9)
+    # the long (slow) tracks alone give their own, lower D: the option changes the answer
+    assert s["sample_fit"]["D_um2_s"] == pytest.approx(_pooled_covariance_D(long), rel=1e-9)
+    assert s["sample_fit"]["D_um2_s"] < 0.8 * s["D_um2_s"]
+    lo, hi = s["D_ci95_um2_s"]
+    assert lo < s["D_um2_s"] < hi
+
+
+def test_without_the_option_the_sample_D_comes_from_the_analysed_tracks():
+    all_tracks = _tracks(2)
+    counts = all_tracks.groupby("track")["frame"].transform("size")
+    long = all_tracks[counts >= 10].reset_index(drop=True)
+    res = analyze_tracks(long, frame_interval_s=DT, exposure_s=0.0, drift_correction=False,
+                         estimator="covariance", sizing_tracks=all_tracks)
+    assert res.summary["D_um2_s"] == pytest.approx(_pooled_covariance_D(long), rel=1e-9)
+    assert res.summary["n_tracks_D"] == 30
+
+
+def test_the_config_refuses_fewer_than_three_points():
+    with pytest.raises(ValidationError, match="sample_min_track_points"):
+        Config.model_validate({"inputs": ["a.tif"], "analysis": {"sample_min_track_points": 2}})
+    assert Config.model_validate({"inputs": ["a.tif"]}).analysis.sample_min_track_points == 3
