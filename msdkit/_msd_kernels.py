@@ -756,6 +756,18 @@ def sandwich(J, C):  # pragma: no cover - compiled
     return out
 
 
+# ------------------------------------------------------------------------------------------ bootstrap counts
+@numba.njit(cache=True)
+def count_draws(draws, n):  # pragma: no cover - compiled
+    """(b, n) float counts of each value 0..n-1 in each row of draws (b, k): numpy.bincount row by row."""
+    b, k = draws.shape
+    out = np.zeros((b, n))
+    for i in range(b):
+        for j in range(k):
+            out[i, draws[i, j]] += 1.0
+    return out
+
+
 # ------------------------------------------------------------------------------------------ ensemble MSD
 @numba.njit(cache=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled

@@ -1153,10 +1153,10 @@ def sample_motion(
             fin = np.isfinite(e2)
             ea_cnt[gi, :m] = fin
             ea[gi, :m] = np.where(fin, e2, 0.0)
-        if L > k_eb + 1:
-            dk = Q[:, k_eb:] - Q[:, :-k_eb]
-            eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
         d1 = np.diff(Q, axis=1)
+        if L > k_eb + 1:
+            dk = d1 if k_eb == 1 else Q[:, k_eb:] - Q[:, :-k_eb]  # lag 1: the same differences as d1
+            eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
         r2 = np.einsum("gij,gij->gi", d1, d1)
         s2_[gi] = r2.sum(1)
         s4_[gi] = np.einsum("gi,gi->g", r2, r2)

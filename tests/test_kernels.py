@@ -148,3 +148,15 @@ def test_batched_quadratic_forms_equal_numpy_einsum_bit_for_bit(n, n_lags, n_par
     np.testing.assert_array_equal(k.sandwich(J, Cb), np.einsum("nlp,nlm,nmq->npq", J, Cb, J))
     np.testing.assert_array_equal(k.rows_quadratic_form(r, Cb, np.arange(n)),
                                   np.einsum("nl,nlm,nm->n", r, Cb, r))
+
+
+def test_bootstrap_counts_equal_numpy_bincount():
+    # Reference: numpy.bincount of each replicate's draws (the former implementation), same generator state.
+    from msdkit.estimators.alpha_fits import _boot_counts
+
+    T, nb = 137, 23
+    got = _boot_counts(np.random.default_rng(5), T, nb)
+    draws = np.random.default_rng(5).integers(0, T, (nb, T))
+    ref = np.stack([np.bincount(d, minlength=T) for d in draws]).astype(float)
+    np.testing.assert_array_equal(got, ref)
+    assert got.dtype == np.float64

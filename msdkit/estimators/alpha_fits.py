@@ -184,5 +184,7 @@ def _boot_chunk(n_tracks: int) -> int:
 
 def _boot_counts(g, T, nb):
     """(nb, T) counts of each track in nb resamples of T tracks with replacement."""
-    draws = g.integers(0, T, (nb, T)) + (np.arange(nb) * T)[:, None]
-    return np.bincount(draws.ravel(), minlength=nb * T).reshape(nb, T).astype(float)
+    from .._msd_kernels import count_draws
+
+    # the same draws as before; counted in one compiled pass instead of offset + bincount + astype
+    return count_draws(g.integers(0, T, (nb, T)), T)
