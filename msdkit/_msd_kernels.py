@@ -768,6 +768,126 @@ def count_draws(draws, n):  # pragma: no cover - compiled
     return out
 
 
+# ------------------------------------------------------------------------------- numpy's summation order
+@numba.njit(cache=True)
+def _numpy_block_sum(a, lo, n):  # pragma: no cover - compiled
+    """Sum of at most 128 terms a[lo : lo + n] in numpy's order (see :func:`numpy_sum`)."""
+    if n < 8:
+        res = 0.0
+        for i in range(lo, lo + n):
+            res += a[i]
+        return res
+    r0 = a[lo]
+    r1 = a[lo + 1]
+    r2 = a[lo + 2]
+    r3 = a[lo + 3]
+    r4 = a[lo + 4]
+    r5 = a[lo + 5]
+    r6 = a[lo + 6]
+    r7 = a[lo + 7]
+    i = 8
+    stop = n - (n % 8)
+    while i < stop:
+        r0 += a[lo + i]
+        r1 += a[lo + i + 1]
+        r2 += a[lo + i + 2]
+        r3 += a[lo + i + 3]
+        r4 += a[lo + i + 4]
+        r5 += a[lo + i + 5]
+        r6 += a[lo + i + 6]
+        r7 += a[lo + i + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < n:
+        res += a[lo + i]
+        i += 1
+    return res
+
+
+@numba.njit(cache=True)
+def numpy_sum(a, lo, n):  # pragma: no cover - compiled
+    """Sum of a[lo : lo + n] in the order numpy.sum uses along a contiguous axis (pairwise, 8 accumulators).
+
+    Fewer than 8 terms: one after another; up to 128: eight running sums over the multiples of 8, combined
+    as ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7)), then the rest; more: the two halves (the first a
+    multiple of 8 long) summed so and added. Same numbers as numpy.sum bit for bit (tested). The halving is
+    walked with an explicit stack (numba's cache does not load self-recursive functions reliably).
+    """
+    if n <= 128:
+        return _numpy_block_sum(a, lo, n)
+    s_lo = np.empty(64, np.int64)
+    s_n = np.empty(64, np.int64)
+    s_state = np.empty(64, np.int64)
+    vals = np.empty(64)
+    top = 0
+    nv = 0
+    s_lo[0] = lo
+    s_n[0] = n
+    s_state[0] = 0
+    while top >= 0:
+        m = s_n[top]
+        if m <= 128:
+            vals[nv] = _numpy_block_sum(a, s_lo[top], m)
+            nv += 1
+            top -= 1
+            continue
+        m2 = m // 2
+        m2 -= m2 % 8
+        if s_state[top] == 0:  # the first half
+            s_state[top] = 1
+            s_lo[top + 1] = s_lo[top]
+            s_n[top + 1] = m2
+            s_state[top + 1] = 0
+            top += 1
+        elif s_state[top] == 1:  # the second half
+            s_state[top] = 2
+            s_lo[top + 1] = s_lo[top] + m2
+            s_n[top + 1] = m - m2
+            s_state[top + 1] = 0
+            top += 1
+        else:  # both done: first + second
+            vals[nv - 2] = vals[nv - 2] + vals[nv - 1]
+            nv -= 1
+            top -= 1
+    return vals[0]
+
+
+@numba.njit(cache=True)
+def em_mixing_weights(L, prior, n_iter, tol):  # pragma: no cover - compiled
+    """EM steps towards the mixing weights of likelihood rows L (n, A), from ``prior``; see classify.
+
+    Each step: post = L x prior, rows divided by max(row sum, 1e-300), new prior = column means; stop after
+    the step whose largest change is below ``tol`` (NaN: no stop). numpy's operations in numpy's order (row
+    sums pairwise, column sums row after row, then / n), without the (n, A) temporaries.
+    """
+    n, A = L.shape
+    row = np.empty(A)
+    acc = np.zeros(A)
+    prior = prior.copy()
+    for _ in range(n_iter):
+        for i in range(n):
+            for j in range(A):
+                row[j] = L[i, j] * prior[j]
+            s = numpy_sum(row, 0, A)
+            if s < 1e-300:
+                s = 1e-300
+            for j in range(A):
+                v = row[j] / s
+                if i == 0:
+                    acc[j] = v
+                else:
+                    acc[j] += v
+        done = True
+        for j in range(A):
+            new = acc[j] / n
+            if not abs(new - prior[j]) < tol:
+                done = False
+            prior[j] = new
+        if done:
+            break
+    return prior
+
+
 # ------------------------------------------------------------------------------------------ ensemble MSD
 @numba.njit(cache=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled

@@ -160,3 +160,38 @@ def test_bootstrap_counts_equal_numpy_bincount():
     ref = np.stack([np.bincount(d, minlength=T) for d in draws]).astype(float)
     np.testing.assert_array_equal(got, ref)
     assert got.dtype == np.float64
+
+
+@pytest.mark.parametrize("n", [1, 5, 7, 8, 9, 39, 127, 128, 129, 250, 499, 4097])
+def test_compiled_sum_follows_numpy_sum_bit_for_bit(n):
+    # Reference: numpy.sum of a contiguous array (pairwise summation).
+    g = np.random.default_rng(n)
+    a = g.normal(size=n) * 10.0 ** g.uniform(-8, 8, size=n)
+    assert k.numpy_sum(a, 0, n) == np.sum(a)
+    assert k.numpy_sum(a, 1, n - 1) == np.sum(a[1:])
+
+
+def _em_reference(L, n_iter):
+    """The numpy EM loop of classify._alpha_posterior."""
+    prior = np.full(L.shape[1], 1.0 / L.shape[1])
+    for _ in range(n_iter):
+        post = L * prior
+        post /= np.maximum(post.sum(axis=1, keepdims=True), 1e-300)
+        new = post.mean(axis=0)
+        done = np.max(np.abs(new - prior)) < 1e-7
+        prior = new
+        if done:
+            break
+    return prior
+
+
+def test_compiled_em_steps_equal_the_numpy_loop_bit_for_bit():
+    # Reference: the numpy expressions (row sums, column means) of the empirical-Bayes EM loop.
+    g = np.random.default_rng()
+    centre, width = g.uniform(0.2, 1.8, (3000, 1)), g.uniform(0.05, 1.0, (3000, 1))
+    prof = -0.5 * ((np.linspace(0, 2, 39)[None, :] - centre) / width) ** 2
+    L = np.exp(prof - prof.max(axis=1, keepdims=True))
+    L[7] = 0.0  # a row of zeros: its sum is floored at 1e-300
+    start = np.full(39, 1.0 / 39)
+    for n_iter in (1, 3, 50, 400):  # 400: runs to the stopping rule
+        np.testing.assert_array_equal(k.em_mixing_weights(L, start, n_iter, 1e-7), _em_reference(L, n_iter))
