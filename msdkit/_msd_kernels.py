@@ -888,6 +888,56 @@ def em_mixing_weights(L, prior, n_iter, tol):  # pragma: no cover - compiled
     return prior
 
 
+@numba.njit(cache=True)
+def amplitude_information(P, w, shape, noise, r, r_fallback, n_axes, W, n_steps, taper4):  # pragma: no cover
+    """Amplitude of a fixed power-law shape per track and the variance of its logarithm (Whittle information).
+
+    For ``motion_models.amplitude_at_alpha``: per row of P (T, F), the noise ratio r (r_fallback where the
+    spectrum shape + r noise falls below half the shape anywhere), spec = max(shape + r noise, 1e-300),
+    A = max(Σ w P / spec / (n_axes W), 1e-300) and, from the information matrix of (log A, noise),
+    var = F22 / det (1 / F11 when det ≤ 0) x n_steps x taper4. numpy's operations in numpy's order (sums
+    pairwise, :func:`numpy_sum`), so the same numbers; returns (A, var), the logarithm and root left to numpy.
+    """
+    T, F = P.shape
+    spec = np.empty(F)
+    q = np.empty(F)
+    q11 = np.empty(F)
+    q12 = np.empty(F)
+    q22 = np.empty(F)
+    A_out = np.empty(T)
+    var_out = np.empty(T)
+    for t in range(T):
+        rt = r[t]
+        for f in range(F):
+            if shape[f] + rt * noise[f] < 0.5 * shape[f]:
+                rt = r_fallback[t]
+                break
+        for f in range(F):
+            v = shape[f] + rt * noise[f]
+            if v < 1e-300:
+                v = 1e-300
+            spec[f] = v
+            q[f] = w[f] * P[t, f] / v
+        A = numpy_sum(q, 0, F) / (n_axes * W)
+        if A < 1e-300:
+            A = 1e-300
+        for f in range(F):
+            S = A * spec[f]
+            g1 = A * shape[f] / S
+            g2 = noise[f] / S
+            q11[f] = w[f] * g1 * g1
+            q12[f] = w[f] * g1 * g2
+            q22[f] = w[f] * g2 * g2
+        F11 = n_axes * numpy_sum(q11, 0, F)
+        F12 = n_axes * numpy_sum(q12, 0, F)
+        F22 = n_axes * numpy_sum(q22, 0, F)
+        det = F11 * F22 - F12 * F12
+        var = F22 / det if det > 0 else 1.0 / F11
+        A_out[t] = A
+        var_out[t] = var * n_steps * taper4
+    return A_out, var_out
+
+
 # ------------------------------------------------------------------------------------------ ensemble MSD
 @numba.njit(cache=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled

@@ -606,20 +606,15 @@ def amplitude_at_alpha(
     shape = expected_periodogram(_blurred_power(np.arange(N + 1, dtype=float), float(alpha), e), bank.taper)
     _, r, i_r, _ = _profile_grid(P, w, shape[None, :], bank.noise, n_axes)
     r, i_r = r[:, 0], i_r[:, 0]
-    spec = shape[None, :] + r[:, None] * bank.noise[None, :]  # (T, F)
-    bad = np.any(spec < 0.5 * shape[None, :], axis=1)
-    r = np.where(bad, NOISE_RATIO_GRID[i_r], r)
-    spec = np.maximum(shape[None, :] + r[:, None] * bank.noise[None, :], 1e-300)
-    A = np.maximum(np.sum(w[None, :] * P / spec, axis=1) / (n_axes * W), 1e-300)
-    S = A[:, None] * spec
-    g1 = A[:, None] * shape[None, :] / S  # ∂ log S / ∂ log A
-    g2 = bank.noise[None, :] / S  # ∂ log S / ∂ B
-    F11 = n_axes * np.sum(w * g1 * g1, axis=1)
-    F12 = n_axes * np.sum(w * g1 * g2, axis=1)
-    F22 = n_axes * np.sum(w * g2 * g2, axis=1)
-    det = F11 * F22 - F12**2
-    var = np.where(det > 0, F22 / np.where(det > 0, det, 1.0), 1.0 / F11)
-    var = var * N * np.sum(bank.taper**4)  # variance inflation of a tapered periodogram
+    from ._msd_kernels import amplitude_information
+
+    # per track, in one compiled pass (numpy's operations and summation order, tested against them): the
+    # noise ratio back on the grid where shape + r·noise falls below half the shape, spec = max(shape +
+    # r·noise, 1e-300), A = max(Σ w P / spec / (n_axes W), 1e-300), and with S = A spec, g1 = A shape / S
+    # (∂ log S / ∂ log A), g2 = noise / S (∂ log S / ∂ B), F_ij = n_axes Σ w g_i g_j: var = F22 / det (1 / F11
+    # when det ≤ 0) times N Σ taper⁴, the variance inflation of a tapered periodogram
+    A, var = amplitude_information(np.ascontiguousarray(P), w, shape, bank.noise, r, NOISE_RATIO_GRID[i_r],
+                                   n_axes, W, N, float(np.sum(bank.taper**4)))
     return np.log(A), np.sqrt(var)
 
 

@@ -195,3 +195,45 @@ def test_compiled_em_steps_equal_the_numpy_loop_bit_for_bit():
     start = np.full(39, 1.0 / 39)
     for n_iter in (1, 3, 50, 400):  # 400: runs to the stopping rule
         np.testing.assert_array_equal(k.em_mixing_weights(L, start, n_iter, 1e-7), _em_reference(L, n_iter))
+
+
+def _amplitude_reference(P, w, shape, noise, r, i_r, n_axes, N, taper):
+    """The numpy expressions that motion_models.amplitude_at_alpha used per track."""
+    W = w.sum()
+    spec = shape[None, :] + r[:, None] * noise[None, :]
+    bad = np.any(spec < 0.5 * shape[None, :], axis=1)
+    r = np.where(bad, mm.NOISE_RATIO_GRID[i_r], r)
+    spec = np.maximum(shape[None, :] + r[:, None] * noise[None, :], 1e-300)
+    A = np.maximum(np.sum(w[None, :] * P / spec, axis=1) / (n_axes * W), 1e-300)
+    S = A[:, None] * spec
+    g1 = A[:, None] * shape[None, :] / S
+    g2 = noise[None, :] / S
+    F11 = n_axes * np.sum(w * g1 * g1, axis=1)
+    F12 = n_axes * np.sum(w * g1 * g2, axis=1)
+    F22 = n_axes * np.sum(w * g2 * g2, axis=1)
+    det = F11 * F22 - F12**2
+    var = np.where(det > 0, F22 / np.where(det > 0, det, 1.0), 1.0 / F11)
+    var = var * N * np.sum(taper**4)
+    return np.log(A), np.sqrt(var)
+
+
+@pytest.mark.parametrize("n_steps", [9, 49, 499])
+def test_compiled_amplitudes_equal_the_numpy_expressions_bit_for_bit(n_steps):
+    # Reference: numpy expressions (numpy.sum along the frequencies, pairwise) of the amplitude and its
+    # Whittle-information variance; a track standing still and noise ratios forced off the allowed range
+    # exercise the floors and the fallback to the grid ratio.
+    g = np.random.default_rng(n_steps)
+    steps = g.normal(size=(300, n_steps, 2)) * g.uniform(0.01, 1.0, (300, 1, 1))
+    bank = mm._bank(n_steps, 0.3)
+    P = mm.periodograms(steps, bank.taper)
+    P[4] = 0.0
+    shape = mm.expected_periodogram(mm._blurred_power(np.arange(n_steps + 1.0), 0.7, 0.3), bank.taper)
+    _, r, i_r, _ = mm._profile_grid(P, bank.weights, shape[None, :], bank.noise, 2)
+    r, i_r = r[:, 0].copy(), i_r[:, 0]
+    r[:20] = -0.3  # below the allowed range: falls back to the grid value
+    with np.errstate(all="ignore"):  # the still track overflows (numpy warns, the compiled loop does not)
+        ref = _amplitude_reference(P, bank.weights, shape, bank.noise, r, i_r, 2, n_steps, bank.taper)
+    A, var = k.amplitude_information(P, bank.weights, shape, bank.noise, r, mm.NOISE_RATIO_GRID[i_r], 2,
+                                     bank.weights.sum(), n_steps, float(np.sum(bank.taper**4)))
+    np.testing.assert_array_equal(np.log(A), ref[0])
+    np.testing.assert_array_equal(np.sqrt(var), ref[1])
