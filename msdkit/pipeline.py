@@ -189,11 +189,17 @@ def analyze_tracks(
                                       "Set acquisition.frame_interval_s in the config."))
     exposure_s = frame_interval_s if exposure_s is None else float(exposure_s)
     tracks = _in_track_frame_order(tracks)
-    tracks["time_s"] = tracks["frame"].to_numpy(float) * frame_interval_s
+    time_s = tracks["frame"].to_numpy(float) * frame_interval_s
+    # tables from msdkit's readers already hold exactly these times: writing the column again would copy every
+    # float column of the table (copy-on-write), so it is set only when it differs
+    if "time_s" not in tracks.columns or not np.array_equal(tracks["time_s"].to_numpy(), time_s):
+        tracks["time_s"] = time_s
+    del time_s
     if min_track_points:
         counts = tracks.groupby("track")["frame"].transform("size")
         tracks = tracks[counts >= min_track_points].reset_index(drop=True)
-    n_tracks = int(tracks["track"].nunique())
+    ids = tracks["track"].to_numpy()
+    n_tracks = int(np.count_nonzero(ids[1:] != ids[:-1])) + 1 if ids.size else 0  # rows in track order
     if n_tracks == 0:
         raise InputError("no tracks to analyse: every track was shorter than the minimum length or the table "
                          "was empty. Check detection/linking settings or lower analysis.min_track_points.")
