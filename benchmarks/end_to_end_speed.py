@@ -6,10 +6,10 @@ Table: 20,000 Brownian tracks x 500 points (10 million rows), simulated in four 
 
 Timings in the same run:
 
-* read: msdkit.io.tables.read_track_table of the Parquet file;
+* read: msdkit.io.tables.read_track_table of the Parquet file (median of 3);
 * floor: one batched real FFT over the positions array (n_tracks, n_points, 2), scipy.fft.rfft with the
   zero-padded length an exact FFT autocorrelation needs (nfft >= 2N - 1) - the bare cost of touching the
-  data once with an FFT;
+  data once with an FFT (median of 3);
 * the stages of msdkit.pipeline.analyze_tracks called one after another as the pipeline calls them
   (drift, per-track fits, sample fit, ensemble MSD, motion classes, sample motion, per-track size inputs and
   the size distribution of the tracks), then analyze_tracks as a whole and the overview figure;
@@ -164,19 +164,24 @@ def main() -> None:
 
     if args.skip_big:
         return
-    tracks, t_read = timed(read_track_table, str(path), frame_interval_s=DT)
+    # the baseline three times each, median kept (the machine may be shared; the stages run once each)
+    reads = []
+    for _ in range(3):
+        tracks, t = timed(read_track_table, str(path), frame_interval_s=DT)
+        reads.append(t)
     rss_read = peak_rss_mb()
     n_tr = tracks["track"].nunique()
     N = len(tracks) // n_tr
     pos = np.stack([tracks["x_um"].to_numpy(float), tracks["y_um"].to_numpy(float)], axis=1)
     pos = pos.reshape(n_tr, N, 2)
     nfft = scipy.fft.next_fast_len(2 * N - 1, real=True)
-    _, t_fft = timed(scipy.fft.rfft, pos, n=nfft, axis=1)
+    ffts = [timed(scipy.fft.rfft, pos, n=nfft, axis=1)[1] for _ in range(3)]
     del pos
+    t_read, t_fft = float(np.median(reads)), float(np.median(ffts))
     base = t_read + t_fft
     print(f"\nbig table: {n_tr} tracks x {N} points ({len(tracks)} rows)")
-    print(f"  read                     {t_read:7.2f} s")
-    print(f"  floor (batched rfft)     {t_fft:7.2f} s")
+    print(f"  read                     {t_read:7.2f} s  (median of 3: {min(reads):.2f}-{max(reads):.2f})")
+    print(f"  floor (batched rfft)     {t_fft:7.2f} s  (median of 3: {min(ffts):.2f}-{max(ffts):.2f})")
     print(f"  {'stage':<24s} {'s':>7s}  {'/floor':>7s}  {'/(read+floor)':>13s}")
     for k, v in stages(tracks).items():
         print(f"  {k:<24s} {v:7.2f}  {v / t_fft:7.1f}  {v / base:13.1f}")
