@@ -280,6 +280,10 @@ def run_one(name: str, seed: int, n_frames: int, size: int, cache: Path) -> dict
         "D_lo": s["D_ci95_um2_s"][0],
         "D_hi": s["D_ci95_um2_s"][1],
         "radius_nm": s["radius_nm"],
+        "alpha": s["alpha"],
+        "alpha_lo": s["alpha_ci95"][0],
+        "alpha_hi": s["alpha_ci95"][1],
+        "flags": ",".join(s["flags"]),
         "estimator": s["estimator"],
         "n_tracks": s["n_tracks"],
         "n_tracks_D": s["n_tracks_D"],
@@ -333,7 +337,7 @@ def main() -> None:
         "mean over movies\n"
     )
     head = (
-        "| scene | what changes | D | radius | truth-level | perfect links | linking | tracks (long / for D) | "
+        "| scene | what changes | D | radius | alpha | truth-level | perfect links | linking | tracks (long / for D) | "
         "spots/frame | recall | wrong joins | D at radius 3.8 / 4.2 / 4.6 SD |"
     )
     print(head)
@@ -346,7 +350,7 @@ def main() -> None:
         scan = " / ".join(pct(np.mean([s[k] for s in g["scan"]]), D_TRUE) for k in SCAN_ACCEPTANCE_SD)
         print(
             f"| {name} | {SCENES[name][0]} | {pct(D, D_TRUE)} | "
-            f"{pct(g['radius_nm'].mean(), RADIUS_TRUE_NM)} | "
+            f"{pct(g['radius_nm'].mean(), RADIUS_TRUE_NM)} | {g['alpha'].mean():.3f} | "
             f"{pct(g['D_truth_level'].mean(), D_TRUE)} | {pct(g['D_perfect_links'].mean(), D_TRUE)} | "
             f"{100 * g['linking_effect'].mean():+.1f} | "
             f"{g['n_tracks'].mean():.0f} / {g['n_tracks_D'].mean():.0f} | {g['spots_per_frame'].mean():.0f} | "
@@ -359,6 +363,11 @@ def main() -> None:
         f"linking alone: mean {100 * df['linking_effect'].mean():+.1f} %, largest scene mean "
         f"{100 * df.groupby('scene')['linking_effect'].mean().abs().max():.1f} %; the 95 % interval of D holds the "
         f"truth in {int(((df['D_lo'] <= D_TRUE) & (D_TRUE <= df['D_hi'])).sum())} of {len(df)} movies"
+    )
+    print(
+        f"sample alpha: mean {df['alpha'].mean():.3f}, per-movie SD {df['alpha'].std():.3f}, its 95 % interval "
+        f"holds 1 in {int(((df['alpha_lo'] <= 1) & (1 <= df['alpha_hi'])).sum())} of {len(df)} movies; movies with "
+        f"flags: {', '.join(f'{r.scene}/{r.seed}: {r.flags}' for r in df.itertuples() if r.flags) or 'none'}"
     )
 
 

@@ -176,7 +176,9 @@ def analyze_tracks(
         Tracks pooled into the sample D and its interval (default: the analysed tracks). Movies pass every
         track of ``analysis.sample_min_track_points`` (3) or more points: the long-track filter selects
         particles that stayed sharp and in focus and tracks lengthened by wrong joins, while short tracks
-        carry most of the steps of fast, dim particles. alpha, classes and per-track fits keep the analysed tracks.
+        carry most of the steps of fast, dim particles. The sample alpha and the sample flags come from the
+        same tracks (tracks too short to classify count as undetermined); per-track fits and classes keep the
+        analysed tracks.
 
     Returns
     -------
@@ -241,10 +243,20 @@ def analyze_tracks(
                for c in classes.columns}
     track_fits = track_fits.drop(columns=[c for c in ("motion_class",) if c in track_fits.columns])
     track_fits = track_fits.merge(classes.rename(columns=renamed), on="track", how="left")
-    motion = classify.sample_motion(
-        tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
-        track_fits=track_fits,
-    )
+    if sample_tracks is None:
+        motion = classify.sample_motion(
+            tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
+            track_fits=track_fits,
+        )
+    else:
+        # the sample's alpha, ergodicity and spread from every track of the sample set, as the sample D (long
+        # tracks of a low-recall movie are mostly chains of wrong joins; see sample_tracks above); tracks
+        # too short to classify count as undetermined
+        shortest = int(sample_tracks.groupby("track")["frame"].size().min()) if len(sample_tracks) else 3
+        motion = classify.sample_motion(
+            sample_tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s,
+            exposure_s=exposure_s, track_fits=track_fits, min_points=max(3, shortest),
+        )
 
     radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
     # the lag-1 size kernels use the Brownian step model's localisation error

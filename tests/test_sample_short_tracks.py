@@ -14,7 +14,7 @@ from pydantic import ValidationError
 
 from msdkit.config import Config
 from msdkit.pipeline import analyze_tracks
-from msdkit.simulate import brownian_positions, positions_to_tracks
+from msdkit.simulate import brownian_positions, fbm_positions, positions_to_tracks
 
 DT = 0.05
 
@@ -74,3 +74,33 @@ def test_the_config_refuses_fewer_than_three_points():
     with pytest.raises(ValidationError, match="sample_min_track_points"):
         Config.model_validate({"inputs": ["a.tif"], "analysis": {"sample_min_track_points": 2}})
     assert Config.model_validate({"inputs": ["a.tif"]}).analysis.sample_min_track_points == 3
+
+
+def _mixed_length_tracks(positions_short, positions_long, g) -> pd.DataFrame:
+    short = positions_to_tracks(positions_short, frame_interval_s=DT,
+                                lengths=g.integers(3, positions_short.shape[1] + 1, positions_short.shape[0]))
+    long = positions_to_tracks(positions_long, frame_interval_s=DT, first_track_id=10_000)
+    return pd.concat([short, long], ignore_index=True)
+
+
+@pytest.mark.parametrize(("alpha_true", "flag"), [(0.6, "subdiffusive"), (1.0, None)])
+def test_movie_sample_alpha_and_flags_use_the_short_tracks_too(alpha_true, flag):
+    # fractional Brownian motion with MSD = 2 d K t^alpha (Mandelbrot & Van Ness 1968); the sample alpha of
+    # the pooled tracks must hold the truth within twice its own 95 % half-width, and the flag must follow
+    g = np.random.default_rng(7)
+    kw = dict(alpha=alpha_true, K_um2_s_alpha=0.3, frame_interval_s=DT, exposure_s=DT / 2,
+              localization_sd_um=0.02, rng=g)
+    tracks = _mixed_length_tracks(fbm_positions(600, 12, **kw), fbm_positions(15, 40, **kw), g)
+    counts = tracks.groupby("track")["frame"].transform("size")
+    long = tracks[counts >= 10].reset_index(drop=True)
+    res = analyze_tracks(long, frame_interval_s=DT, exposure_s=DT / 2, drift_correction=False,
+                         sizing_tracks=tracks, sample_tracks=tracks[counts >= 3].reset_index(drop=True))
+    s = res.summary
+    lo, hi = s["alpha_ci95"]
+    assert lo < s["alpha"] < hi
+    assert abs(s["alpha"] - alpha_true) < max(hi - lo, 0.05)
+    assert s["motion"]["n_tracks_used"] > 300  # the short tracks were pooled, not only the 15 long ones
+    if flag:
+        assert flag in s["flags"]
+    else:
+        assert not {"subdiffusive", "superdiffusive"} & set(s["flags"])
