@@ -17,8 +17,10 @@ Timings in the same run:
   tracks.parquet, track_fits.csv, figures, report), twice (the first run also compiles the numba kernels
   when their cache is cold): wall time, the input's own time from its log line, and peak resident memory.
 
-Printed: seconds per stage and each time as a ratio to the floor and to read + floor, and the peak resident
-memory of this process (and of the ``msdkit run`` process). Target: the whole analysis within 5 x read +
+Printed: seconds per stage and each time as a ratio to the floor and to read + floor; the same for CPU time
+(all threads of the process: on a machine shared with other jobs it moves much less with their load than the
+wall time does, so before/after comparisons use it); and the peak resident memory of this process (and of the
+``msdkit run`` process). Target: the whole analysis within 5 x read +
 floor. Also a small table (150 tracks of 20-80 points) timed the same way, best of --repeats runs, to check
 small inputs do not get slower. The machine may be shared: compare the ratios, which are measured in the
 same run, not the seconds.
@@ -71,37 +73,44 @@ def small_table(seed: int = 0):
 
 
 def timed(fn, *a, **k):
+    """(result, wall seconds, CPU seconds of all threads of this process)."""
     gc.collect()
+    c0 = time.process_time()
     t0 = time.perf_counter()
     out = fn(*a, **k)
-    return out, time.perf_counter() - t0
+    return out, time.perf_counter() - t0, time.process_time() - c0
 
 
-def stages(tracks) -> dict[str, float]:
-    """Seconds of each analysis stage, called as msdkit.pipeline.analyze_tracks calls them."""
+def stages(tracks) -> dict[str, tuple[float, float]]:
+    """(wall, CPU) seconds of each analysis stage, called as msdkit.pipeline.analyze_tracks calls them."""
     kw = dict(frame_interval_s=DT, exposure_s=EXPOSURE, n_dims=2)
+    t: dict[str, tuple[float, float]] = {}
+
+    def run(key, fn, *a, **k):
+        out, wall, cpu = timed(fn, *a, **k)
+        t[key] = (wall, cpu)
+        return out
+
     classify._FIT_CACHE.clear()
-    t = {}
     tracks = tracks.sort_values(["track", "frame"], kind="stable").reset_index(drop=True)
-    d, t["drift"] = timed(drift.estimate_drift, tracks, frame_interval_s=DT)
+    d = run("drift", drift.estimate_drift, tracks, frame_interval_s=DT)
     shared = fit._Shared(tracks, 2)  # as the pipeline shares steps and TA-MSDs between the two fits
-    tf, t["fit_tracks"] = timed(fit.fit_tracks, tracks, _shared=shared, **kw)
-    sf, t["fit_sample"] = timed(fit.fit_sample, tracks, tf, rng=0, _shared=shared, **kw)
+    tf = run("fit_tracks", fit.fit_tracks, tracks, _shared=shared, **kw)
+    sf = run("fit_sample", fit.fit_sample, tracks, tf, rng=0, _shared=shared, **kw)
     del shared
-    _, t["ensemble_msd"] = timed(msd.ensemble_msd, tracks, frame_interval_s=DT)
-    cl, t["classify_tracks"] = timed(classify.classify_tracks, tracks, frame_interval_s=DT,
-                                     exposure_s=EXPOSURE, sigma_um=sf.sigma_um)
-    _, t["sample_motion"] = timed(classify.sample_motion, tracks, cl, sf, d, frame_interval_s=DT,
-                                  exposure_s=EXPOSURE)
-    si, t["size_inputs"] = timed(sizing.lag1_track_estimates, tracks, localization_sd_um=sf.D_sigma_um, **kw)
-    _, t["size_distribution"] = timed(sizing.size_distribution_of_tracks, tracks, temperature_c=25.0,
-                                      viscosity_mpa_s=0.89, rng=0, **kw)
+    run("ensemble_msd", msd.ensemble_msd, tracks, frame_interval_s=DT)
+    cl = run("classify_tracks", classify.classify_tracks, tracks, frame_interval_s=DT, exposure_s=EXPOSURE,
+             sigma_um=sf.sigma_um)
+    run("sample_motion", classify.sample_motion, tracks, cl, sf, d, frame_interval_s=DT, exposure_s=EXPOSURE)
+    run("size_inputs", sizing.lag1_track_estimates, tracks, localization_sd_um=sf.D_sigma_um, **kw)
+    run("size_distribution", sizing.size_distribution_of_tracks, tracks, temperature_c=25.0,
+        viscosity_mpa_s=0.89, rng=0, **kw)
     classify._FIT_CACHE.clear()
-    res, t["analyze_tracks (whole)"] = timed(analyze_tracks, tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
+    res = run("analyze_tracks (whole)", analyze_tracks, tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
     from msdkit.report.figures import write_stack_figures
 
     with tempfile.TemporaryDirectory() as tmp:
-        _, t["overview figure"] = timed(write_stack_figures, Path(tmp), res)
+        run("overview figure", write_stack_figures, Path(tmp), res)
     return t
 
 
@@ -110,11 +119,12 @@ def peak_rss_mb(who=resource.RUSAGE_SELF) -> float:
     return resource.getrusage(who).ru_maxrss / 1024.0
 
 
-def run_cli(table: Path) -> tuple[float, float]:
-    """Wall time of ``msdkit run`` on the table in a fresh process, and the input's own time (its log line).
+def run_cli(table: Path) -> tuple[float, float, float]:
+    """``msdkit run`` on the table in a fresh process: wall, the input's own time (its log line) and CPU time.
 
     Peak memory: RUSAGE_CHILDREN after it.
     """
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
     with tempfile.TemporaryDirectory() as tmp:
         cfg = Path(tmp) / "run.yaml"
         cfg.write_text(f"inputs: [{table}]\noutput_dir: {tmp}/out\n"
@@ -130,7 +140,9 @@ def run_cli(table: Path) -> tuple[float, float]:
         wall = time.perf_counter() - t0
         # the log line of the input ends with its own time (read, analysis, outputs): "... (25.9 s)"
         found = re.findall(r"big: ok.*\(([0-9.]+) s\)", done.stdout + done.stderr)
-        return wall, (float(found[-1]) if found else float("nan"))
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpu = (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime)
+        return wall, (float(found[-1]) if found else float("nan")), cpu
 
 
 def main() -> None:
@@ -145,7 +157,7 @@ def main() -> None:
     if not args.skip_big and not path.exists():
         print("writing", path)
         make_big_table(path)
-    runs: list[tuple[float, float]] = []
+    runs: list[tuple[float, float, float]] = []
     rss_run = None
     if args.run and not args.skip_big:
         # first, while this process is small: a forked child's peak memory counts the parent's at the fork.
@@ -156,7 +168,7 @@ def main() -> None:
     small = small_table()
     best: dict[str, float] = {}
     for _ in range(max(1, args.repeats)):
-        for k, v in stages(small).items():
+        for k, (v, _cpu) in stages(small).items():
             best[k] = min(best.get(k, np.inf), v)
     print("small table: 150 tracks x 20-80 points, best of", args.repeats)
     for k, v in best.items():
@@ -165,32 +177,39 @@ def main() -> None:
     if args.skip_big:
         return
     # the baseline three times each, median kept (the machine may be shared; the stages run once each)
-    reads = []
+    reads, reads_cpu = [], []
     for _ in range(3):
-        tracks, t = timed(read_track_table, str(path), frame_interval_s=DT)
+        tracks, t, c = timed(read_track_table, str(path), frame_interval_s=DT)
         reads.append(t)
+        reads_cpu.append(c)
     rss_read = peak_rss_mb()
     n_tr = tracks["track"].nunique()
     N = len(tracks) // n_tr
     pos = np.stack([tracks["x_um"].to_numpy(float), tracks["y_um"].to_numpy(float)], axis=1)
     pos = pos.reshape(n_tr, N, 2)
     nfft = scipy.fft.next_fast_len(2 * N - 1, real=True)
-    ffts = [timed(scipy.fft.rfft, pos, n=nfft, axis=1)[1] for _ in range(3)]
+    ffts = [timed(scipy.fft.rfft, pos, n=nfft, axis=1) for _ in range(3)]
+    ffts_cpu = [f[2] for f in ffts]
+    ffts = [f[1] for f in ffts]
     del pos
     t_read, t_fft = float(np.median(reads)), float(np.median(ffts))
     base = t_read + t_fft
+    base_cpu = float(np.median(reads_cpu)) + float(np.median(ffts_cpu))
     print(f"\nbig table: {n_tr} tracks x {N} points ({len(tracks)} rows)")
     print(f"  read                     {t_read:7.2f} s  (median of 3: {min(reads):.2f}-{max(reads):.2f})")
     print(f"  floor (batched rfft)     {t_fft:7.2f} s  (median of 3: {min(ffts):.2f}-{max(ffts):.2f})")
-    print(f"  {'stage':<24s} {'s':>7s}  {'/floor':>7s}  {'/(read+floor)':>13s}")
-    for k, v in stages(tracks).items():
-        print(f"  {k:<24s} {v:7.2f}  {v / t_fft:7.1f}  {v / base:13.1f}")
+    print(f"  read + floor, CPU time   {base_cpu:7.2f} s")
+    head = f"  {'stage':<24s} {'s':>7s}  {'/floor':>7s}  {'/(read+floor)':>13s}"
+    print(head + f"  {'CPU s':>7s}  {'CPU ratio':>9s}")
+    for k, (v, c) in stages(tracks).items():
+        print(f"  {k:<24s} {v:7.2f}  {v / t_fft:7.1f}  {v / base:13.1f}  {c:7.2f}  {c / base_cpu:9.1f}")
     print(f"  peak resident memory: {rss_read:.0f} MB after reading, {peak_rss_mb():.0f} MB after the stages "
           f"(table {tracks.memory_usage(deep=True).sum() / 2**20:.0f} MB)")
-    for label, (wall, own) in zip(("first", "second"), runs, strict=False):
+    for label, (wall, own, cpu) in zip(("first", "second"), runs, strict=False):
         print(f"  msdkit run, {label} (fresh process, all outputs) {wall:7.2f} s  {wall / base:5.1f} x "
               f"(read+floor); the input itself (read, analysis, outputs) {own:.2f} s, the rest (start-up, "
-              f"imports, compiled-kernel cache, checksums, report) {wall - own:.2f} s")
+              f"imports, compiled-kernel cache, checksums, report) {wall - own:.2f} s; CPU {cpu:.2f} s = "
+              f"{cpu / base_cpu:.1f} x (read+floor CPU)")
     if runs:
         print(f"  msdkit run peak resident memory {rss_run:.0f} MB")
 
