@@ -938,6 +938,34 @@ def amplitude_information(P, w, shape, noise, r, r_fallback, n_axes, W, n_steps,
     return A_out, var_out
 
 
+# ------------------------------------------------------------------------------------------ fit-cache key
+@numba.njit(cache=True)
+def column_sums(v, w_in, c_out):  # pragma: no cover - compiled
+    """Plain sum and position-weighted sums of one column (the fit-cache key of classify), in one pass.
+
+    Rows go in blocks of w_in.size: block k is weighted by w_in within the block and by 1 + 0.5 cos(k c_out)
+    as a whole (returned as the second sum); the rows after the last full block by w_in (the third sum).
+    """
+    B = w_in.size
+    n = v.size
+    k_full = n // B
+    s1 = 0.0
+    s2 = 0.0
+    for k in range(k_full):
+        inner = 0.0
+        for i in range(B):
+            x = float(v[k * B + i])
+            s1 += x
+            inner += x * w_in[i]
+        s2 += inner * (1.0 + 0.5 * np.cos(k * c_out))
+    s3 = 0.0
+    for i in range(n - k_full * B):
+        x = float(v[k_full * B + i])
+        s1 += x
+        s3 += x * w_in[i]
+    return s1, s2, s3
+
+
 # ------------------------------------------------------------------------------------------ ensemble MSD
 @numba.njit(cache=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled

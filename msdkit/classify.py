@@ -295,7 +295,6 @@ _FIT_CACHE: dict = {}
 
 _CHECK_BLOCK = 4096
 _CHECK_W_IN = 1.0 + 0.5 * np.sin(np.arange(_CHECK_BLOCK) * 0.7548776662466927)
-_CHECK_W2 = np.column_stack([np.ones(_CHECK_BLOCK), _CHECK_W_IN])  # plain and weighted sums in one product
 
 
 def _column_check(a: np.ndarray) -> str:
@@ -305,22 +304,19 @@ def _column_check(a: np.ndarray) -> str:
     cancellation; a column with non-finite values (whose sums say nothing) is hashed in full instead.
     """
     try:
-        v = np.asarray(a, dtype=np.float64).ravel()
+        v = np.asarray(a)
+        if v.dtype not in (np.int64, np.int32, np.float64, np.float32):  # the compiled sums take these four
+            v = v.astype(np.float64)
+        v = np.ascontiguousarray(v.ravel())
     except (TypeError, ValueError):  # not numbers: hash the pandas hashes of the values
         import hashlib
 
         hv = pd.util.hash_array(np.asarray(a))
         return f"{a.size}:{a.dtype}:" + hashlib.blake2b(hv.tobytes(), digest_size=16).hexdigest()
     n = v.size
-    k = n // _CHECK_BLOCK
-    main = v[: k * _CHECK_BLOCK].reshape(k, _CHECK_BLOCK) @ _CHECK_W2  # (k, 2)
-    w_out = 1.0 + 0.5 * np.cos(np.arange(k) * 0.5698402909980532)
-    tail = v[k * _CHECK_BLOCK :]
-    sums = (
-        float(main[:, 0].sum() + tail.sum()),
-        float(main[:, 1] @ w_out),
-        float(tail @ _CHECK_W_IN[: tail.size]),
-    )
+    from ._msd_kernels import column_sums
+
+    sums = tuple(float(x) for x in column_sums(v, _CHECK_W_IN, 0.5698402909980532))  # one compiled pass
     if np.all(np.isfinite(sums)):
         return f"{n}:{a.dtype}:" + ",".join(x.hex() for x in sums)
     import hashlib

@@ -237,3 +237,19 @@ def test_compiled_amplitudes_equal_the_numpy_expressions_bit_for_bit(n_steps):
                                      bank.weights.sum(), n_steps, float(np.sum(bank.taper**4)))
     np.testing.assert_array_equal(np.log(A), ref[0])
     np.testing.assert_array_equal(np.sqrt(var), ref[1])
+
+
+@pytest.mark.parametrize("dtype", [np.int64, np.int32, np.float64, np.float32])
+def test_fit_cache_key_sums_equal_numpy_sums(dtype):
+    # Reference: numpy sums of the column, of the column weighted row by row within 4096-row blocks and by
+    # block, and of the rows after the last full block (1e-12 relative: another order of the same sums).
+    from msdkit.classify import _CHECK_W_IN
+
+    g = np.random.default_rng(1)
+    v = (g.normal(size=3 * 4096 + 1234) * 1000).astype(dtype)
+    x = v.astype(np.float64)
+    k_full = x.size // 4096
+    blocks = x[: k_full * 4096].reshape(k_full, 4096)
+    ref = (x.sum(), (blocks @ _CHECK_W_IN) @ (1.0 + 0.5 * np.cos(np.arange(k_full) * 0.5698402909980532)),
+           x[k_full * 4096 :] @ _CHECK_W_IN[: x.size - k_full * 4096])
+    np.testing.assert_allclose(k.column_sums(v, _CHECK_W_IN, 0.5698402909980532), ref, rtol=1e-12)
