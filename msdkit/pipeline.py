@@ -243,7 +243,7 @@ def analyze_tracks(
                for c in classes.columns}
     track_fits = track_fits.drop(columns=[c for c in ("motion_class",) if c in track_fits.columns])
     track_fits = track_fits.merge(classes.rename(columns=renamed), on="track", how="left")
-    if sample_tracks is None:
+    if sample_tracks is None or D_fit is sample_fit:  # no sample set, or none of its tracks was usable
         motion = classify.sample_motion(
             tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
             track_fits=track_fits,

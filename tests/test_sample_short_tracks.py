@@ -104,3 +104,15 @@ def test_movie_sample_alpha_and_flags_use_the_short_tracks_too(alpha_true, flag)
         assert flag in s["flags"]
     else:
         assert not {"subdiffusive", "superdiffusive"} & set(s["flags"])
+
+
+def test_an_unusable_sample_set_falls_back_to_the_analysed_tracks():
+    g = np.random.default_rng(11)
+    t = positions_to_tracks(brownian_positions(40, 30, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02,
+                                               rng=g), frame_interval_s=DT)
+    plain = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0).summary
+    for unusable in (t.iloc[:0], t[t["frame"] < 2]):  # no tracks; only two-point tracks (no step pairs)
+        s = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0, sample_tracks=unusable).summary
+        assert s["D_um2_s"] == plain["D_um2_s"]
+        assert s["alpha"] == plain["alpha"]
+        assert s["flags"] == plain["flags"]
