@@ -150,9 +150,9 @@ def _fill_padded(idx, K, first, n_modes, *arrays):
     """(len(idx), K) arrays of each flat per-mode array for tracks idx, plus a 0/1 weight array."""
     s0 = int(first[idx[0]]) if idx.size else 0
     if idx.size and np.all(n_modes[idx] == K) and np.array_equal(first[idx], s0 + K * np.arange(idx.size)):
-        # tracks of K modes each, back to back: rows of a reshaped slice, no padding
+        # tracks of K modes each, back to back: rows of a reshaped slice (a view: callers only read them)
         rows = slice(s0, s0 + K * idx.size)
-        return np.ones((idx.size, K)), [arr[rows].reshape(idx.size, K).copy() for arr in arrays]
+        return np.ones((idx.size, K)), [arr[rows].reshape(idx.size, K) for arr in arrays]
     cols = np.arange(K)
     w = (cols[None, :] < n_modes[idx][:, None]).astype(float)
     last = first[idx][:, None] + np.maximum(n_modes[idx], 1)[:, None] - 1
