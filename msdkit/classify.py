@@ -1050,6 +1050,9 @@ def sample_motion(
     e = exposure / dt
     fits = _fit_all(tracks, dt, exposure, min_points)
     cls = track_classes.set_index("track")["motion_class"].reindex(fits.ids).fillna("undetermined").to_numpy()
+    # tracks without a row in track_classes (a sample set wider than the classified tracks, e.g. the short
+    # tracks of a movie) enter alpha and the spreads but not the class fractions
+    classified = np.isin(fits.ids, track_classes["track"].to_numpy())
     use = fits.usable & (cls != "immobile")
     n_used = int(use.sum())
 
@@ -1065,10 +1068,10 @@ def sample_motion(
     n_alpha = int(np.unique(owner).size)
 
     # class fractions
-    counts = {c: int(np.sum(cls == c)) for c in MOTION_CLASSES}
+    counts = {c: int(np.sum(cls[classified] == c)) for c in MOTION_CLASSES}
     n_cls = max(1, sum(v for k, v in counts.items() if k != "undetermined"))
     fractions = {c: counts[c] / n_cls for c in MOTION_CLASSES if c != "undetermined"}
-    fractions["undetermined"] = counts["undetermined"] / max(1, len(cls))
+    fractions["undetermined"] = counts["undetermined"] / max(1, int(classified.sum()))
 
     # heterogeneity of per-track amplitudes at the ensemble alpha
     het_ratio = het_p = spread = np.nan
@@ -1248,7 +1251,7 @@ def sample_motion(
         flags.append("subdiffusive")
     if np.isfinite(alpha_ci[0]) and alpha_ci[0] > 1.0 + alpha_tolerance:
         flags.append("superdiffusive")
-    n_fitted = int(fits.usable.sum())  # tracks long enough to classify, undetermined ones included
+    n_fitted = int((fits.usable & classified).sum())  # tracks classified, undetermined ones included
     for c in ("confined", "directed"):
         frac = counts[c] / n_fitted if n_fitted else 0.0
         numbers[f"fraction_{c}"] = float(frac)

@@ -14,7 +14,7 @@ from pydantic import ValidationError
 
 from msdkit.config import Config
 from msdkit.pipeline import analyze_tracks
-from msdkit.simulate import brownian_positions, fbm_positions, positions_to_tracks
+from msdkit.simulate import brownian_positions, confined_positions, fbm_positions, positions_to_tracks
 
 DT = 0.05
 
@@ -116,3 +116,23 @@ def test_an_unusable_sample_set_falls_back_to_the_analysed_tracks():
         assert s["D_um2_s"] == plain["D_um2_s"]
         assert s["alpha"] == plain["alpha"]
         assert s["flags"] == plain["flags"]
+
+
+def test_short_unclassified_tracks_do_not_dilute_the_class_flags():
+    # Brownian motion reflected in a box (Saxton & Jacobson 1997): the long tracks are classified confined and
+    # the sample is flagged so; adding ten times as many short tracks to the sample set (alpha, spreads) must
+    # not water the confined fraction down, since short tracks are not classified
+    g = np.random.default_rng(3)
+    kw = dict(D_um2_s=0.5, box_um=1.0, frame_interval_s=DT, localization_sd_um=0.01, rng=g)
+    long = positions_to_tracks(confined_positions(60, 60, **kw), frame_interval_s=DT, first_track_id=10_000)
+    short = positions_to_tracks(confined_positions(600, 9, **kw), frame_interval_s=DT,
+                                lengths=g.integers(3, 10, 600))
+    every = pd.concat([short, long], ignore_index=True)
+    plain = analyze_tracks(long, frame_interval_s=DT, exposure_s=0.0, drift_correction=False).summary
+    pooled = analyze_tracks(long, frame_interval_s=DT, exposure_s=0.0, drift_correction=False,
+                            sizing_tracks=every, sample_tracks=every).summary
+    assert "confined" in plain["flags"]
+    assert "confined" in pooled["flags"]
+    assert pooled["motion"]["numbers"]["fraction_confined"] == plain["motion"]["numbers"]["fraction_confined"]
+    assert pooled["motion"]["class_fractions"] == plain["motion"]["class_fractions"]
+    assert pooled["motion"]["class_counts"] == plain["motion"]["class_counts"]
