@@ -206,6 +206,11 @@ def analyze_tracks(
         raise InputError("no tracks to analyse: every track was shorter than the minimum length or the table "
                          "was empty. Check detection/linking settings or lower analysis.min_track_points.")
 
+    if sample_tracks is not None and len(sample_tracks) == len(tracks) and np.array_equal(
+        np.unique(sample_tracks["track"].to_numpy()), np.unique(ids)
+    ):
+        sample_tracks = None  # the same tracks (no short ones, e.g. a 2D movie): nothing to fit twice
+
     viscosity_mpa_s = float(hydro.medium_viscosity_mpa_s(medium, temperature_c))
 
     drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)

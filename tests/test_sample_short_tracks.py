@@ -136,3 +136,13 @@ def test_short_unclassified_tracks_do_not_dilute_the_class_flags():
     assert pooled["motion"]["numbers"]["fraction_confined"] == plain["motion"]["numbers"]["fraction_confined"]
     assert pooled["motion"]["class_fractions"] == plain["motion"]["class_fractions"]
     assert pooled["motion"]["class_counts"] == plain["motion"]["class_counts"]
+
+
+def test_a_sample_set_equal_to_the_analysed_tracks_gives_the_plain_analysis():
+    g = np.random.default_rng(13)
+    t = positions_to_tracks(brownian_positions(60, 25, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02,
+                                               rng=g), frame_interval_s=DT)
+    plain = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0).summary
+    same = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0, sample_tracks=t.copy()).summary
+    for key in ("D_um2_s", "D_ci95_um2_s", "alpha", "alpha_ci95", "flags", "n_tracks_D"):
+        assert same[key] == plain[key]
