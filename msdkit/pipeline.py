@@ -255,8 +255,8 @@ def analyze_tracks(
         )
     else:
         # the sample's alpha, ergodicity and spread from every track of the sample set, as the sample D (long
-        # tracks of a low-recall movie are mostly chains of wrong joins; see sample_tracks above); tracks
-        # too short to classify count as undetermined
+        # tracks of a low-recall movie are mostly chains of wrong joins; see sample_tracks above); the class
+        # fractions and the confined/directed flags count only the classified (analysed) tracks
         shortest = int(sample_tracks.groupby("track")["frame"].size().min()) if len(sample_tracks) else 3
         motion = classify.sample_motion(
             sample_tracks, classes, sample_fit, drift_est, frame_interval_s=frame_interval_s,
