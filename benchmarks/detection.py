@@ -366,8 +366,9 @@ def main() -> None:
     )
     print(
         f"sample alpha: mean {df['alpha'].mean():.3f}, per-movie SD {df['alpha'].std():.3f}, its 95 % interval "
-        f"holds 1 in {int(((df['alpha_lo'] <= 1) & (1 <= df['alpha_hi'])).sum())} of {len(df)} movies; movies with "
-        f"flags: {', '.join(f'{r.scene}/{r.seed}: {r.flags}' for r in df.itertuples() if r.flags) or 'none'}"
+        f"holds 1 in {int(((df['alpha_lo'] <= 1) & (1 <= df['alpha_hi'])).sum())} of {len(df)} movies; "
+        f"movies with flags: "
+        f"{', '.join(f'{r.scene}/{r.seed}: {r.flags}' for r in df.itertuples() if r.flags) or 'none'}"
     )
 
 

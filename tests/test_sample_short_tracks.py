@@ -108,8 +108,8 @@ def test_movie_sample_alpha_and_flags_use_the_short_tracks_too(alpha_true, flag)
 
 def test_an_unusable_sample_set_falls_back_to_the_analysed_tracks():
     g = np.random.default_rng(11)
-    t = positions_to_tracks(brownian_positions(40, 30, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02,
-                                               rng=g), frame_interval_s=DT)
+    pos = brownian_positions(40, 30, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
+    t = positions_to_tracks(pos, frame_interval_s=DT)
     plain = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0).summary
     for unusable in (t.iloc[:0], t[t["frame"] < 2]):  # no tracks; only two-point tracks (no step pairs)
         s = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0, sample_tracks=unusable).summary
@@ -140,8 +140,8 @@ def test_short_unclassified_tracks_do_not_dilute_the_class_flags():
 
 def test_a_sample_set_equal_to_the_analysed_tracks_gives_the_plain_analysis():
     g = np.random.default_rng(13)
-    t = positions_to_tracks(brownian_positions(60, 25, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02,
-                                               rng=g), frame_interval_s=DT)
+    pos = brownian_positions(60, 25, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
+    t = positions_to_tracks(pos, frame_interval_s=DT)
     plain = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0).summary
     same = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0, sample_tracks=t.copy()).summary
     for key in ("D_um2_s", "D_ci95_um2_s", "alpha", "alpha_ci95", "flags", "n_tracks_D"):

@@ -153,7 +153,8 @@ def write_parquet_atomic(df, path: str | os.PathLike, *, compression: str = "zst
 
     table = pa.Table.from_pandas(df, preserve_index=False)
     with _atomic_path(path) as tmp:
-        # plain encoding: dictionaries of ten-million-row float (and id) columns cost time and do not shrink them
+        # plain encoding: dictionaries of ten-million-row float (and id) columns cost time and do not
+        # shrink them
         pq.write_table(table, tmp, compression=compression, use_dictionary=False)
     return Path(path)
 
