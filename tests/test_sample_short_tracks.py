@@ -146,3 +146,16 @@ def test_a_sample_set_equal_to_the_analysed_tracks_gives_the_plain_analysis():
     same = analyze_tracks(t, frame_interval_s=DT, exposure_s=0.0, sample_tracks=t.copy()).summary
     for key in ("D_um2_s", "D_ci95_um2_s", "alpha", "alpha_ci95", "flags", "n_tracks_D"):
         assert same[key] == plain[key]
+
+
+def test_long_exposures_of_fast_particles_get_a_caution():
+    from msdkit.pipeline import exposure_caution
+
+    # RMS displacement per axis during the exposure: sqrt(2 D t_E) (Einstein 1905); 100 nm beads in water at
+    # 25 °C (D = 4.907 µm²/s, METHODS.md) over 33.3 ms move 0.572 µm, 2.65 spot SDs of 0.216 µm
+    kw = dict(frame_interval_s=1 / 30, spot_sigma_um=1.3 * 0.166)
+    msg = exposure_caution(4.907, exposure_s=1 / 30, **kw)
+    assert msg is not None and "0.57 µm" in msg and "2.7 spot SDs" in msg
+    assert exposure_caution(4.907, exposure_s=0.015, **kw) is None  # under half the frame interval
+    assert exposure_caution(0.728, exposure_s=1 / 30, frame_interval_s=1 / 30, spot_sigma_um=0.166) is None
+    assert exposure_caution(float("nan"), exposure_s=1 / 30, **kw) is None
