@@ -159,3 +159,18 @@ def test_long_exposures_of_fast_particles_get_a_caution():
     assert exposure_caution(4.907, exposure_s=0.015, **kw) is None  # under half the frame interval
     assert exposure_caution(0.728, exposure_s=1 / 30, frame_interval_s=1 / 30, spot_sigma_um=0.166) is None
     assert exposure_caution(float("nan"), exposure_s=1 / 30, **kw) is None
+
+
+def test_the_report_shows_the_cautions_and_the_tracks_behind_the_sample_D(tmp_path):
+    import json
+
+    from msdkit.report.html import _stack_section
+
+    stack = tmp_path / "movie_a"
+    stack.mkdir()
+    summary = {"D_um2_s": 4.2, "D_ci95_um2_s": [3.9, 4.6], "n_tracks": 58, "n_tracks_D": 610, "flags": [],
+               "cautions": ["long exposure: 25 ms of a 33.3 ms frame <check>"]}
+    (stack / "summary.json").write_text(json.dumps(summary))
+    html_text = _stack_section(stack)
+    assert "sample D from 610 tracks of 3 or more points" in html_text
+    assert "long exposure: 25 ms of a 33.3 ms frame &lt;check&gt;" in html_text  # escaped

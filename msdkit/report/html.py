@@ -55,13 +55,17 @@ def _stack_section(stack_dir: Path) -> str:
         ("D (µm²/s)", f"{_fmt(s.get('D_um2_s'))} [{_fmt(ci[0])}, {_fmt(ci[1])}]"),
         ("anomalous exponent α", f"{_fmt(s.get('alpha'), '.3f')} [{_fmt(aci[0], '.3f')}, {_fmt(aci[1], '.3f')}]"),
         ("hydrodynamic radius (nm)", f"{_fmt(s.get('radius_nm'), '.1f')} [{_fmt(rci[0], '.1f')}, {_fmt(rci[1], '.1f')}]"),
-        ("tracks", _fmt(s.get("n_tracks"), "d")),
+        ("tracks", _fmt(s.get("n_tracks"), "d")
+         + (f" (sample D from {_fmt(s.get('n_tracks_D'), 'd')} tracks of 3 or more points)"
+            if s.get("n_tracks_D") not in (None, s.get("n_tracks")) else "")),
         ("localisation SD (nm)", _fmt((s.get("localization_sd_um") or math.nan) * 1000, ".1f")),
         ("viscosity (mPa·s) at °C", f"{_fmt(s.get('viscosity_mpa_s'))} at {_fmt(s.get('temperature_c'))}"),
         ("drift (µm/s)", ", ".join(_fmt(v) for v in (s.get("drift_um_s") or []))),
         ("flags", html.escape("; ".join(s.get("flags") or []) or "none")),
         ("estimator", html.escape(str(s.get("estimator")))),
     ]
+    for caution in s.get("cautions") or []:
+        rows.append(("caution", html.escape(str(caution))))
     dist = s.get("size_distribution") or {}
     if dist:
         rows.append(("number-weighted D10 / D50 / D90 (nm)",
