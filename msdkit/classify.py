@@ -486,20 +486,11 @@ def _alpha_posterior(
         return out, lo, hi
     L = np.exp(profiles[ok] - profiles[ok].max(axis=1, keepdims=True))  # (n, A), each row's max is 1
     prior = np.full(ALPHA_GRID.size, 1.0 / ALPHA_GRID.size)
-    if L.dtype == np.float64 and L.flags.c_contiguous:
-        from ._msd_kernels import em_mixing_weights
+    from ._msd_kernels import em_mixing_weights
 
-        # the loop below, compiled: the same operations in the same order (tested), no (n, A) temporaries
-        prior = em_mixing_weights(L, prior, int(n_iter), 1e-7)
-    else:
-        for _ in range(int(n_iter)):
-            post = L * prior
-            post /= np.maximum(post.sum(axis=1, keepdims=True), 1e-300)
-            new = post.mean(axis=0)
-            done = np.max(np.abs(new - prior)) < 1e-7
-            prior = new
-            if done:
-                break
+    # EM steps towards the mixing weights, compiled: numpy's operations in numpy's order (tested against the
+    # plain loop in tests/test_kernels.py), without (n, A) temporaries; L is float64 and C-ordered (np.exp)
+    prior = em_mixing_weights(np.ascontiguousarray(L, dtype=np.float64), prior, int(n_iter), 1e-7)
     post = L * np.maximum(prior, 1e-300)
     post /= post.sum(axis=1, keepdims=True)
     out[ok] = post @ ALPHA_GRID

@@ -137,7 +137,9 @@ def exposure_caution(D_um2_s: float, *, exposure_s: float, frame_interval_s: flo
     during the exposure, ``sqrt(2 D t_E)``, is at least ``BLUR_SPOT_RATIO`` spot SDs; ``None`` otherwise.
     """
     values = (D_um2_s, exposure_s, frame_interval_s, spot_sigma_um)
-    if not all(v is not None and np.isfinite(v) for v in values) or frame_interval_s <= 0 or spot_sigma_um <= 0:
+    if not all(v is not None and np.isfinite(v) for v in values):
+        return None
+    if frame_interval_s <= 0 or spot_sigma_um <= 0:
         return None
     if D_um2_s <= 0 or exposure_s < LONG_EXPOSURE_SHARE * frame_interval_s:
         return None
@@ -145,14 +147,17 @@ def exposure_caution(D_um2_s: float, *, exposure_s: float, frame_interval_s: flo
     ratio = blur_um / spot_sigma_um
     if ratio < BLUR_SPOT_RATIO:
         return None
-    return (f"long exposure: {exposure_s * 1e3:.3g} ms of a {frame_interval_s * 1e3:.3g} ms frame, during which "
-            f"particles move {blur_um:.2g} µm RMS per axis ({ratio:.1f} spot SDs); blurred spots are detected and "
-            "localised selectively, so D may read low (5-21 % on simulated beads). Shorten the exposure to at "
-            "most half the frame interval, or check with reference beads of similar size at these settings.")
+    return (f"long exposure: {exposure_s * 1e3:.3g} ms of a {frame_interval_s * 1e3:.3g} ms frame, during "
+            f"which particles move {blur_um:.2g} µm RMS per axis ({ratio:.1f} spot SDs); blurred spots are "
+            "detected and localised selectively, so D may read low (5-21 % on simulated beads). Shorten the "
+            "exposure to at most half the frame interval, or check with reference beads of similar size at "
+            "these settings.")
 
 
-def _with_min_points(tracks: pd.DataFrame, min_points: int) -> pd.DataFrame:
-    counts = tracks.groupby("track")["frame"].transform("size").to_numpy()
+def _with_min_points(tracks: pd.DataFrame, min_points: int, counts: np.ndarray | None = None):
+    """Rows of tracks with at least ``min_points`` points (``counts``: each row's track length, if known)."""
+    if counts is None:
+        counts = tracks.groupby("track")["frame"].transform("size").to_numpy()
     return tracks[counts >= min_points].reset_index(drop=True)
 
 
@@ -230,8 +235,7 @@ def analyze_tracks(
         tracks["time_s"] = time_s
     del time_s
     if min_track_points:
-        counts = tracks.groupby("track")["frame"].transform("size")
-        tracks = tracks[counts >= min_track_points].reset_index(drop=True)
+        tracks = _with_min_points(tracks, min_track_points)
     ids = tracks["track"].to_numpy()
     n_tracks = int(np.count_nonzero(ids[1:] != ids[:-1])) + 1 if ids.size else 0  # rows in track order
     if n_tracks == 0:
@@ -512,9 +516,10 @@ def process_input(
     an, smp = cfg.analysis, cfg.sample
     sizing_tracks, step_limits, sample_tracks = None, None, None
     if "sizing" in used:  # a movie: short tracks were kept for the size distribution and the sample D
-        sizing_tracks = _with_min_points(tracks, an.size_min_track_points)
-        sample_tracks = _with_min_points(tracks, an.sample_min_track_points)
-        tracks = _with_min_points(tracks, cfg.linking.min_track_points)
+        counts = tracks.groupby("track")["frame"].transform("size").to_numpy()  # once for the three sets
+        sizing_tracks = _with_min_points(tracks, an.size_min_track_points, counts)
+        sample_tracks = _with_min_points(tracks, an.sample_min_track_points, counts)
+        tracks = _with_min_points(tracks, cfg.linking.min_track_points, counts)
         step_limits = {k: used["sizing"][k] for k in ("max_step_um", "step_loss_per_um2")}
     result = analyze_tracks(
         tracks, frame_interval_s=acq["frame_interval_s"], exposure_s=acq["exposure_s"],
