@@ -71,6 +71,7 @@ def test_without_the_option_the_sample_D_comes_from_the_analysed_tracks():
 
 
 def test_the_config_refuses_fewer_than_three_points():
+    # the covariance-based estimator needs two steps per track (Vestergaard et al. 2014, eq. 14)
     with pytest.raises(ValidationError, match="sample_min_track_points"):
         Config.model_validate({"inputs": ["a.tif"], "analysis": {"sample_min_track_points": 2}})
     assert Config.model_validate({"inputs": ["a.tif"]}).analysis.sample_min_track_points == 3
@@ -107,6 +108,7 @@ def test_movie_sample_alpha_and_flags_use_the_short_tracks_too(alpha_true, flag)
 
 
 def test_an_unusable_sample_set_falls_back_to_the_analysed_tracks():
+    # our own contract (no outside source): results equal those of the plain analysis
     g = np.random.default_rng(11)
     pos = brownian_positions(40, 30, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
     t = positions_to_tracks(pos, frame_interval_s=DT)
@@ -139,6 +141,7 @@ def test_short_unclassified_tracks_do_not_dilute_the_class_flags():
 
 
 def test_a_sample_set_equal_to_the_analysed_tracks_gives_the_plain_analysis():
+    # our own contract (no outside source): results equal those of the plain analysis
     g = np.random.default_rng(13)
     pos = brownian_positions(60, 25, D_um2_s=1.0, frame_interval_s=DT, localization_sd_um=0.02, rng=g)
     t = positions_to_tracks(pos, frame_interval_s=DT)
@@ -162,6 +165,7 @@ def test_long_exposures_of_fast_particles_get_a_caution():
 
 
 def test_the_report_shows_the_cautions_and_the_tracks_behind_the_sample_D(tmp_path):
+    # our own report contents (no outside source); the text is HTML-escaped (common practice)
     import json
 
     from msdkit.report.html import _stack_section
