@@ -1,5 +1,8 @@
 """Compiled loops of the MSD engine and of the other track-level stages (numba); imported lazily.
 
+Every kernel releases the GIL (``nogil=True``), so stages that only read the tracks can run side by side in
+threads (:func:`msdkit.pipeline.analyze_tracks`); the flag does not change a kernel's arithmetic.
+
 Each kernel makes one pass over a block so that the engine's cost stays close to that of its FFTs. The
 selection kernels (:func:`median`, :func:`median_abs_deviation`) give exactly what :func:`numpy.median` gives
 (the middle value, or the mean of the two middle values), in a few linear passes instead of a partition.
@@ -11,7 +14,7 @@ import numba
 import numpy as np
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def scan_order(track, frame):  # pragma: no cover - compiled
     """Return (0 = sorted by track then frame, 1 = not sorted, 2 = a (track, frame) pair repeats, index)."""
     n = track.size
@@ -26,7 +29,7 @@ def scan_order(track, frame):  # pragma: no cover - compiled
     return 0, 0
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def track_starts(track):  # pragma: no cover - compiled
     """Index of the first row of each track in a table sorted by track."""
     n = track.size
@@ -45,7 +48,7 @@ def track_starts(track):  # pragma: no cover - compiled
     return out
 
 
-@numba.njit(cache=True, fastmath=True)
+@numba.njit(cache=True, nogil=True, fastmath=True)
 def fill_block(c0, c1, c2, n_dims, start, count, grid, csum):  # pragma: no cover - compiled
     """Centre each track's coordinates into grid[d, row, :L] (zeros after) and running sums of |r|^2."""
     b = start.size
@@ -76,7 +79,7 @@ def fill_block(c0, c1, c2, n_dims, start, count, grid, csum):  # pragma: no cove
             out[i + 1] = acc
 
 
-@numba.njit(cache=True, fastmath=True)
+@numba.njit(cache=True, nogil=True, fastmath=True)
 def dct1_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - compiled
     """Power spectrum P_k = sum_d |spec[d, row, k]|^2 folded for a DCT-I by a half-length real FFT.
 
@@ -107,7 +110,7 @@ def dct1_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - compi
         f1[r] = acc
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def finish_block(G, f1, csum, count, n_lag, scale, rows, offsets, out_lag, out_msd,
                  out_pairs):  # pragma: no cover - compiled
     """Autocorrelation from the half-length FFT, MSD = (S1 - 2 S2)/(L - n), written into the output."""
@@ -131,7 +134,7 @@ def finish_block(G, f1, csum, count, n_lag, scale, rows, offsets, out_lag, out_m
             out_pairs[o + n] = L - n
 
 
-@numba.njit(cache=True, fastmath=True)
+@numba.njit(cache=True, nogil=True, fastmath=True)
 def fill_gapped(c0, c1, c2, n_dims, frame, start, count, first, stack):  # pragma: no cover - compiled
     """Place tracks with gaps on the frame grid.
 
@@ -160,7 +163,7 @@ def fill_gapped(c0, c1, c2, n_dims, frame, start, count, first, stack):  # pragm
                 stack[n_dims + 1, r, col] += v * v
 
 
-@numba.njit(cache=True, fastmath=True)
+@numba.njit(cache=True, nogil=True, fastmath=True)
 def gapped_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - compiled
     """Fold the numerator and pair-count spectra for a DCT-I by a half-length real FFT.
 
@@ -197,7 +200,7 @@ def gapped_prepare(spec, n_dims, sin_t, cos_t, g, f1):  # pragma: no cover - com
             f1[which, r] = acc
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def gapped_finish(G, f1, n_lag, scale, msd, pairs):  # pragma: no cover - compiled
     """Numerator and pair count per lag from the half-length FFTs; msd = numerator / pairs (NaN if none)."""
     b = G.shape[1]
@@ -220,7 +223,7 @@ def gapped_finish(G, f1, n_lag, scale, msd, pairs):  # pragma: no cover - compil
             msd[r, n] = scale * fn / cnt if cnt > 0 else np.nan
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def step_statistics(c0, c1, c2, n_dims, frame, start, count):  # pragma: no cover - compiled
     """Collect the steps between consecutive frames of every track and their per-track sums.
 
@@ -286,7 +289,7 @@ _SELECT_BINS = 4096
 _SELECT_SMALL = 4096
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def _bucket_select(buf, k):  # pragma: no cover - compiled
     """Values of rank k and k + 1 (0-based, ascending; rank k + 1 clipped to the last) of buf (overwritten).
 
@@ -343,7 +346,7 @@ def _bucket_select(buf, k):  # pragma: no cover - compiled
         m = j
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def _select_pair(x, center, use_center, k):  # pragma: no cover - compiled
     """Values of rank k and k + 1 (0-based, ascending; k + 1 clipped to the last) of v = x or |x - center|.
 
@@ -382,7 +385,7 @@ def _select_pair(x, center, use_center, k):  # pragma: no cover - compiled
     return _bucket_select(buf, k)
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def median(x):  # pragma: no cover - compiled
     """Median of a 1-D array of finite values, as numpy.median computes it (NaN when empty)."""
     n = x.size
@@ -392,7 +395,7 @@ def median(x):  # pragma: no cover - compiled
     return a if n % 2 else (a + b) / 2.0
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def median_abs_deviation(x, center):  # pragma: no cover - compiled
     """Median of |x - center| (not scaled), as numpy.median(numpy.abs(x - center)) computes it."""
     n = x.size
@@ -403,7 +406,7 @@ def median_abs_deviation(x, center):  # pragma: no cover - compiled
 
 
 # ----------------------------------------------------------------------------------------------- drift
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def drift_steps(track, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
     """Collect the steps between consecutive rows of a track (rows sorted by track, frame; NaN rows skipped).
 
@@ -443,7 +446,7 @@ def drift_steps(track, frame, c0, c1, c2, n_dims):  # pragma: no cover - compile
     return tid[:k], f0[:k], gap[:k], disp[:k]
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def track_sums(tid, gap, d, n_tr, f0, first, n_frames):  # pragma: no cover - compiled
     """Per track: summed displacement S (n_tr, n_dims) and summed gap G; per frame: one-frame steps from it.
 
@@ -465,7 +468,7 @@ def track_sums(tid, gap, d, n_tr, f0, first, n_frames):  # pragma: no cover - co
     return S, G, n_one
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def group_by_block(f0, edges, tid, gap, d):  # pragma: no cover - compiled
     """Regroup steps by block of start frames, keeping their order within a block (a counting sort).
 
@@ -511,7 +514,7 @@ def group_by_block(f0, edges, tid, gap, d):  # pragma: no cover - compiled
     return bounds, gap_s, d_s, n_distinct
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def huber_block_sums(d, gap, med, cutoff):  # pragma: no cover - compiled
     """Sum w d and w gap per axis, with Huber weights w = min(1, cutoff / |d - med|) per value."""
     nd = d.shape[1]
@@ -527,7 +530,7 @@ def huber_block_sums(d, gap, med, cutoff):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------ sample-level MSD
-@numba.njit(cache=True, fastmath=True)
+@numba.njit(cache=True, nogil=True, fastmath=True)
 def lag_square_sums(Q, n_lags):  # pragma: no cover - compiled
     """Sum over i and axes of (Q[g, i + n] - Q[g, i])^2 for lags n = 1..n_lags, per track g: (G, n_lags).
 
@@ -550,7 +553,7 @@ def lag_square_sums(Q, n_lags):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------------ step-model grid
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def best_noise_ratio(sc, norm, rank, idx, v3):  # pragma: no cover - compiled
     """Best noise ratio of each track and shape on the likelihood grid, and the scales around it.
 
@@ -587,7 +590,7 @@ def best_noise_ratio(sc, norm, rank, idx, v3):  # pragma: no cover - compiled
                 v3[t, s, j] = v
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def sum_middle_axis(x):  # pragma: no cover - compiled
     """Sum of x (c, n, d) over its middle axis, (c, d), term after term in order.
 
@@ -604,7 +607,7 @@ def sum_middle_axis(x):  # pragma: no cover - compiled
     return out
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def power_with_free_mean(F, mean, H, P, Pd):  # pragma: no cover - compiled
     """Periodograms summed over axes of transforms F (c, d, K) and of F − mean x H, into P and Pd (c, K).
 
@@ -634,7 +637,7 @@ def power_with_free_mean(F, mean, H, P, Pd):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------- track step statistics
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def planar_step_statistics(X, out):  # pragma: no cover - compiled
     """Lag-1 step correlation, non-Gaussian parameter, straightness, gyration asymmetry of 2D tracks.
 
@@ -709,7 +712,7 @@ def planar_step_statistics(X, out):  # pragma: no cover - compiled
 # optimisation sums these term after term, multiplying left to right; the loops below do the same, so they
 # give the same numbers bit for bit (tested against numpy.einsum), without einsum's per-element overhead
 # and without first copying the rows of C that a subset of tracks needs.
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def rows_quadratic_form(r, C, rows):  # pragma: no cover - compiled
     """out[i] = Σ_l Σ_m r[i, l] C[rows[i], l, m] r[i, m] (as numpy.einsum("nl,nlm,nm->n", r, C[rows], r))."""
     n, L = r.shape
@@ -724,7 +727,7 @@ def rows_quadratic_form(r, C, rows):  # pragma: no cover - compiled
     return out
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def rows_jt_c(J, C, rows):  # pragma: no cover - compiled
     """out[i, p, m] = Σ_l J[i, l, p] C[rows[i], l, m] (as numpy.einsum("nlp,nlm->npm", J, C[rows]))."""
     n, L, P = J.shape
@@ -740,7 +743,7 @@ def rows_jt_c(J, C, rows):  # pragma: no cover - compiled
     return out
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def sandwich(J, C):  # pragma: no cover - compiled
     """out[i, p, q] = Σ_l Σ_m J[i, l, p] C[i, l, m] J[i, m, q] (numpy.einsum("nlp,nlm,nmq->npq", J, C, J))."""
     n, L, P = J.shape
@@ -757,7 +760,7 @@ def sandwich(J, C):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------------ bootstrap counts
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def count_draws(draws, n):  # pragma: no cover - compiled
     """(b, n) float counts of each value 0..n-1 in each row of draws (b, k): numpy.bincount row by row."""
     b, k = draws.shape
@@ -769,7 +772,7 @@ def count_draws(draws, n):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------- numpy's summation order
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def _numpy_block_sum(a, lo, n):  # pragma: no cover - compiled
     """Sum of at most 128 terms a[lo : lo + n] in numpy's order (see :func:`numpy_sum`)."""
     if n < 8:
@@ -804,7 +807,7 @@ def _numpy_block_sum(a, lo, n):  # pragma: no cover - compiled
     return res
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def numpy_sum(a, lo, n):  # pragma: no cover - compiled
     """Sum of a[lo : lo + n] in the order numpy.sum uses along a contiguous axis (pairwise, 8 accumulators).
 
@@ -852,7 +855,7 @@ def numpy_sum(a, lo, n):  # pragma: no cover - compiled
     return vals[0]
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def em_mixing_weights(L, prior, n_iter, tol):  # pragma: no cover - compiled
     """EM steps towards the mixing weights of likelihood rows L (n, A), from ``prior``; see classify.
 
@@ -888,7 +891,7 @@ def em_mixing_weights(L, prior, n_iter, tol):  # pragma: no cover - compiled
     return prior
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def amplitude_information(P, w, shape, noise, r, r_fallback, n_axes, W, n_steps, taper4):  # pragma: no cover
     """Amplitude of a fixed power-law shape per track and the variance of its logarithm (Whittle information).
 
@@ -939,7 +942,7 @@ def amplitude_information(P, w, shape, noise, r, r_fallback, n_axes, W, n_steps,
 
 
 # ------------------------------------------------------------------------------------------ fit-cache key
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def column_sums(v, w_in, c_out):  # pragma: no cover - compiled
     """Plain sum and position-weighted sums of one column (the fit-cache key of classify), in one pass.
 
@@ -967,7 +970,7 @@ def column_sums(v, w_in, c_out):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------------ ensemble MSD
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled
     """Per lag: tracks, summed pairs, summed pairs x TA-MSD, summed TA-MSD (row order, as numpy.bincount)."""
     n_tr = np.zeros(n, np.int64)
@@ -983,7 +986,7 @@ def ensemble_sums(lag, y, w, n):  # pragma: no cover - compiled
     return n_tr, sw, swy, sy
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
     """Per lag: sum of (pairs x (TA-MSD - mean))^2 over tracks (row order, as numpy.bincount)."""
     ss = np.zeros(n)
@@ -995,7 +998,8 @@ def ensemble_spread(lag, y, w, mean, n):  # pragma: no cover - compiled
 
 
 # ------------------------------------------------------------------------------------------ size-switch path
-@numba.njit(cache=True, error_model="numpy")  # no zero-division check (theta > 0), so divisions vectorise
+# error_model="numpy": no zero-division check (theta > 0), so divisions vectorise
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log_q, out):  # pragma: no cover
     """Mark in ``out`` the steps at which each run's most probable state path (Viterbi) jumps to a new state.
 
@@ -1060,7 +1064,7 @@ def viterbi_switches(y, starts, lengths, run_row, k, theta, c, log_w, log_p, log
 
 
 # ------------------------------------------------------------------------------------------ lag-1 step sums
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def lag1_step_sums(code, frame, c0, c1, c2, n_dims, off0, off1, off2):  # pragma: no cover - compiled
     """Per-track sums of lag-1 steps in one pass over a table in (track, frame) order.
 
@@ -1135,7 +1139,7 @@ def lag1_step_sums(code, frame, c0, c1, c2, n_dims, off0, off1, off2):  # pragma
     return first, n_points, n_steps, n_adj, sq_c, pr_c, sq_r, pr_r
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, nogil=True)
 def lag1_steps(code, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
     """Return the valid lag-1 steps of a table in (track, frame) order (as in :func:`lag1_step_sums`).
 

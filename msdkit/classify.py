@@ -26,6 +26,7 @@ B. Efron & R. J. Tibshirani, An Introduction to the Bootstrap (Chapman & Hall, 1
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -291,6 +292,7 @@ class _Fits:
 
 
 _FIT_CACHE: dict = {}
+_FIT_CACHE_LOCK = threading.Lock()
 
 
 _CHECK_BLOCK = 4096
@@ -340,10 +342,23 @@ def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, m
     if key in _FIT_CACHE:
         return _FIT_CACHE[key]
     fits = _fit_all_uncached(tracks, frame_interval_s, exposure_s, min_points)
-    while len(_FIT_CACHE) >= 2:
-        _FIT_CACHE.pop(next(iter(_FIT_CACHE)))
-    _FIT_CACHE[key] = fits
+    with _FIT_CACHE_LOCK:  # fits may be prepared in another thread (prepare_step_fits)
+        while len(_FIT_CACHE) >= 2:
+            _FIT_CACHE.pop(next(iter(_FIT_CACHE)))
+        _FIT_CACHE[key] = fits
     return fits
+
+
+def prepare_step_fits(tracks: pd.DataFrame, *, frame_interval_s: float, exposure_s: float | None = None,
+                      min_points: int = 10) -> None:
+    """Fit the step models of :func:`classify_tracks` and :func:`sample_motion` ahead of their call.
+
+    The fits depend on the tracks only, so the pipeline computes them in a second thread while the
+    per-track D and alpha are fitted; the next :func:`classify_tracks` (or :func:`sample_motion`) with the
+    same tracks, times and ``min_points`` takes them from the cache (the last two tables are kept) instead
+    of fitting again. The results are the same numbers either way.
+    """
+    _fit_all(tracks, frame_interval_s, _check_tracks(tracks, frame_interval_s, exposure_s), min_points)
 
 
 def _fit_all_uncached(

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from . import schema
+from ._threads import Beside
 from ._version import __version__
 from .errors import FitError, InputError, expected_got
 
@@ -260,19 +261,36 @@ def analyze_tracks(
         corrected = True
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
-    # per-track alpha borrows the sample's shared localisation error, fitted inside fit_tracks
-    shared = fit._Shared(tracks, n_dims)  # steps and TA-MSD matrices computed once for both fits
-    track_fits = fit.fit_tracks(tracks, method=estimator, _shared=shared, **kw)
-    sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, _shared=shared, **kw)
-    del shared
-    D_fit = sample_fit
-    if sample_tracks is not None:
-        D_fit = _sample_D_fit(sample_tracks, estimator=estimator, seed=seed, fallback=sample_fit, **kw)
-    ens = msd.ensemble_msd(tracks, frame_interval_s=frame_interval_s, max_lag_frames=max_lag_frames)
-    if max_lag_frames is None and len(ens):
-        # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
-        enough = ens["n_tracks"].to_numpy() >= max(5, 0.1 * n_tracks)
-        ens = ens[np.cumprod(enough).astype(bool)].reset_index(drop=True) if enough[0] else ens.iloc[:1]
+    radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
+    size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
+
+    def sizes():
+        # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs)
+        step_sums = sizing.track_step_sums(tracks, n_dims=n_dims)  # one pass over the table for both calls
+        dist, _ = sizing.size_distribution_of_tracks(
+            tracks if sizing_tracks is None else sizing_tracks,
+            wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw,
+            step_sums=step_sums if sizing_tracks is None else None)
+        return step_sums, dist
+
+    # The stages that only read the tracks (step-model fits of the classes, size distribution, ensemble MSD)
+    # run in a second thread beside the per-track fits when the process may use two (msdkit._threads): the
+    # same computations, so the same numbers; with a limit of one thread each runs here, in this order.
+    with Beside() as beside:  # an error here cancels what has not started and waits for what has
+        step_fits = beside.submit(classify.prepare_step_fits, tracks, frame_interval_s=frame_interval_s,
+                                  exposure_s=exposure_s)
+        sized = beside.submit(sizes)
+        ens_msd = beside.submit(msd.ensemble_msd, tracks, frame_interval_s=frame_interval_s,
+                                max_lag_frames=max_lag_frames)
+        # per-track alpha borrows the sample's shared localisation error, fitted inside fit_tracks
+        shared = fit._Shared(tracks, n_dims)  # steps and TA-MSD matrices computed once for both fits
+        track_fits = fit.fit_tracks(tracks, method=estimator, _shared=shared, **kw)
+        sample_fit = fit.fit_sample(tracks, track_fits, method=estimator, rng=seed, _shared=shared, **kw)
+        del shared
+        D_fit = sample_fit
+        if sample_tracks is not None:
+            D_fit = _sample_D_fit(sample_tracks, estimator=estimator, seed=seed, fallback=sample_fit, **kw)
+        step_fits.result()
 
     classes = classify.classify_tracks(
         tracks, frame_interval_s=frame_interval_s, exposure_s=exposure_s,
@@ -299,22 +317,20 @@ def analyze_tracks(
             exposure_s=exposure_s, track_fits=track_fits, min_points=max(3, shortest),
         )
 
-    radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
     # the lag-1 size kernels use the Brownian step model's localisation error
     sigma = getattr(sample_fit, "D_sigma_um", getattr(sample_fit, "sigma_um", None))
     sigma = float(sigma) if sigma is not None and np.isfinite(sigma) and sigma > 0 else None
-    size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
-    # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs)
-    step_sums = sizing.track_step_sums(tracks, n_dims=n_dims)  # one pass over the table for both calls
-    dist, _ = sizing.size_distribution_of_tracks(
-        tracks if sizing_tracks is None else sizing_tracks,
-        wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw,
-        step_sums=step_sums if sizing_tracks is None else None)
+    step_sums, dist = sized.result()
     size_input = sizing.lag1_track_estimates(tracks, localization_sd_um=sigma, step_sums=step_sums, **size_kw)
     # per-track sizes with the short-track bias removed (Saxton 1997 χ² algebra; see sizing.track_sizes_nm)
     per_track = sizing.track_sizes_nm(size_input, wall_distance_um=wall_distance_um, **radius_kw, **size_kw)
     track_fits["radius_nm"] = track_fits["track"].map(per_track.set_index("track")["radius_nm"])
     track_fits = _alpha_given_sample(track_fits)
+    ens = ens_msd.result()
+    if max_lag_frames is None and len(ens):
+        # auto: keep the lags that at least a tenth of the tracks (and at least 5) reach
+        enough = ens["n_tracks"].to_numpy() >= max(5, 0.1 * n_tracks)
+        ens = ens[np.cumprod(enough).astype(bool)].reset_index(drop=True) if enough[0] else ens.iloc[:1]
 
     sample_D = float(D_fit.D_um2_s)
     D_lo, D_hi = (float(v) for v in D_fit.D_ci95_um2_s)

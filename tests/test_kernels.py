@@ -253,3 +253,70 @@ def test_fit_cache_key_sums_equal_numpy_sums(dtype):
     ref = (x.sum(), (blocks @ _CHECK_W_IN) @ (1.0 + 0.5 * np.cos(np.arange(k_full) * 0.5698402909980532)),
            x[k_full * 4096 :] @ _CHECK_W_IN[: x.size - k_full * 4096])
     np.testing.assert_allclose(k.column_sums(v, _CHECK_W_IN, 0.5698402909980532), ref, rtol=1e-12)
+
+
+# ------------------------------------------------------------------------------ stages side by side (threads)
+def _small_tracks(seed=3):
+    from msdkit.simulate import brownian_positions, positions_to_tracks
+
+    g = np.random.default_rng(seed)
+    pos = brownian_positions(60, 60, D_um2_s=1.0, frame_interval_s=0.05, exposure_s=0.02,
+                             localization_sd_um=0.03, rng=seed)
+    return positions_to_tracks(pos, frame_interval_s=0.05, lengths=g.integers(12, 61, 60))
+
+
+def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch):
+    # Reference: the same analysis with every stage run in order in one thread (OMP_NUM_THREADS=1, as in a
+    # worker process); the second thread only moves independent stages, so every number is identical.
+    from msdkit import classify
+    from msdkit._threads import analysis_threads
+    from msdkit.pipeline import analyze_tracks
+
+    tracks = _small_tracks()
+    kw = dict(frame_interval_s=0.05, exposure_s=0.02)
+    monkeypatch.setenv("OMP_NUM_THREADS", "1")
+    assert analysis_threads() == 1
+    classify._FIT_CACHE.clear()
+    one = analyze_tracks(tracks, **kw)
+    monkeypatch.setenv("OMP_NUM_THREADS", "2")
+    monkeypatch.setenv("NUMBA_NUM_THREADS", "2")
+    classify._FIT_CACHE.clear()
+    two = analyze_tracks(tracks, **kw)
+    for a, b in ((one.track_fits, two.track_fits), (one.ensemble_msd, two.ensemble_msd),
+                 (one.size_table, two.size_table)):
+        assert list(a.columns) == list(b.columns)
+        for c in a.columns:
+            np.testing.assert_array_equal(a[c].to_numpy(), b[c].to_numpy(), err_msg=c)
+    assert repr(one.summary) == repr(two.summary)
+
+
+def test_thread_limit_follows_the_environment_of_worker_processes(monkeypatch):
+    # Common practice: worker processes get OMP_NUM_THREADS=1 (msdkit's local executor, Dask's nanny).
+    from msdkit._threads import analysis_threads
+
+    monkeypatch.delenv("NUMBA_NUM_THREADS", raising=False)
+    monkeypatch.setenv("OMP_NUM_THREADS", "1")
+    assert analysis_threads() == 1
+    monkeypatch.delenv("OMP_NUM_THREADS")
+    monkeypatch.setenv("NUMBA_NUM_THREADS", "1")
+    assert analysis_threads() == 1
+    monkeypatch.delenv("NUMBA_NUM_THREADS")
+    import os
+
+    assert analysis_threads() == len(os.sched_getaffinity(0))
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_stages_beside_the_caller_keep_their_order_and_hand_back_errors(threads):
+    # Reference: calling the functions one after another in one thread (the same order, the same exception).
+    from msdkit._threads import Beside
+
+    done = []
+    with Beside(threads) as beside:
+        first = beside.submit(lambda: done.append(1) or "a")
+        second = beside.submit(lambda: done.append(2) or "b")
+        bad = beside.submit(lambda: 1 / 0)
+    assert (first.result(), second.result()) == ("a", "b")
+    with pytest.raises(ZeroDivisionError):
+        bad.result()
+    assert done == [1, 2]

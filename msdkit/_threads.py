@@ -1,0 +1,66 @@
+"""How many threads one analysis may use, and a helper that runs independent stages beside each other.
+
+The stages of :func:`msdkit.pipeline.analyze_tracks` that only read the tracks (the step-model fits of the
+motion classes, the size distribution, the ensemble MSD) can run in a second thread while the per-track fits
+run in the calling one: their heavy parts are compiled kernels that release the GIL (``nogil=True``), FFTs,
+matrix products and whole-array numpy operations, which release it too. Each stage does exactly the
+arithmetic it does alone, so the results are the same numbers whichever way they run.
+
+Thread limit: the CPUs this process may run on, capped by ``NUMBA_NUM_THREADS`` and ``OMP_NUM_THREADS`` when
+they are set. msdkit's local worker processes and Dask's worker processes get ``OMP_NUM_THREADS=1`` (the
+workers already fill the cores; common practice), so there every stage runs in the calling thread, in order.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import Future, ThreadPoolExecutor
+
+#: Environment variables that cap the threads of one process (the first two are set to 1 in worker processes).
+_LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")
+
+
+def analysis_threads() -> int:
+    """Threads one analysis may use (>= 1): usable CPUs, capped by OMP_NUM_THREADS / NUMBA_NUM_THREADS."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # not on Linux
+        n = os.cpu_count() or 1
+    for var in _LIMIT_VARS:
+        value = os.environ.get(var, "").strip()
+        if value.isdigit() and int(value) >= 1:
+            n = min(n, int(value))
+    return max(1, n)
+
+
+class Beside:
+    """Run callables in one extra thread, in the order given, while the caller goes on (a context manager).
+
+    With a thread limit of 1 (or ``threads=1``) each callable runs at once in the calling thread. ``submit``
+    returns a :class:`concurrent.futures.Future`; ``result()`` re-raises the callable's exception in the
+    caller. Leaving the block normally takes no new callables and lets those submitted run on (collect them
+    with ``result()``); leaving it with an error cancels those not yet started and waits for the running one,
+    so that no work outlives the failed call.
+    """
+
+    def __init__(self, threads: int | None = None) -> None:
+        n = analysis_threads() if threads is None else int(threads)
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-stage") if n > 1 else None
+
+    def submit(self, fn, /, *args, **kwargs) -> Future:
+        if self._pool is not None:
+            return self._pool.submit(fn, *args, **kwargs)
+        done: Future = Future()
+        try:
+            done.set_result(fn(*args, **kwargs))
+        except Exception as exc:  # handed to the caller by result(), as from a thread
+            done.set_exception(exc)
+        return done
+
+    def __enter__(self) -> Beside:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if self._pool is not None:
+            failed = exc_type is not None
+            self._pool.shutdown(wait=failed, cancel_futures=failed)
