@@ -229,6 +229,13 @@ def _safe_sha256(path: Path) -> str | None:
         return None
 
 
+def _future_sha256(future) -> str | None:
+    try:
+        return future.result()
+    except OSError:
+        return None
+
+
 def _output_files(stack_dir: Path) -> dict[str, int]:
     from .io.atomic import TEMP_MARKER
 
@@ -355,7 +362,7 @@ def run_task(task: StackTask, report: Callable[[str, int, int], None] | None = N
     Clears the stack folder's completion record and old error log, calls the per-input function, and on
     success writes ``.done.json`` (last, atomically). Any exception becomes a failed row plus ``error.log``.
     """
-    from .io.atomic import remove_stale_temp_files, write_json_atomic
+    from .io.atomic import remove_stale_temp_files, start_file_sha256, write_json_atomic
     from .progress import log_to_file
 
     t0 = time.perf_counter()
@@ -367,7 +374,9 @@ def run_task(task: StackTask, report: Callable[[str, int, int], None] | None = N
                 (stack_dir / name).unlink(missing_ok=True)
             remove_stale_temp_files(stack_dir)
             log.info("%s: started (%s)", task.stack, task.input_path)
-            sha = task.input_sha256 or _safe_sha256(Path(task.input_path))
+            # the checksum is read on a background thread while the input is analysed (the pipeline's
+            # provenance record waits for the same digest instead of reading the file a second time)
+            sha_future = None if task.input_sha256 else start_file_sha256(task.input_path)
             process = task.process or _default_process()
             frames_cb = None
             if report is not None:
@@ -378,6 +387,7 @@ def run_task(task: StackTask, report: Callable[[str, int, int], None] | None = N
                                   progress=frames_cb)
             row = _row_from_outcome(outcome, task, time.perf_counter() - t0)
             row = dataclasses.replace(row, n_warnings=len(caught))
+            sha = task.input_sha256 or _future_sha256(sha_future)
             if row.status != "ok":
                 message = _name_input(task, row.error or "the input could not be analysed")
                 return failed_row(task, message, run_s=row.run_s)

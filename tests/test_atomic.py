@@ -15,6 +15,7 @@ from msdkit.io.atomic import (
     TEMP_MARKER,
     file_sha256,
     remove_stale_temp_files,
+    start_file_sha256,
     write_bytes_atomic,
     write_csv_atomic,
     write_json_atomic,
@@ -104,6 +105,32 @@ def test_sha256_matches_the_published_test_vector_and_hashlib_across_chunks(tmp_
     g = tmp_path / "big.bin"
     g.write_bytes(data)
     assert file_sha256(g, chunk_bytes=4096) == hashlib.sha256(data).hexdigest()
+
+
+def test_a_file_hashed_in_the_background_gives_hashlibs_digest_and_is_read_once(tmp_path, monkeypatch):
+    import msdkit.io.atomic as atomic
+
+    data = np.random.default_rng(1).bytes(300_001)
+    f = tmp_path / "input.bin"
+    f.write_bytes(data)
+    reads = []
+    real = atomic._sha256_of
+    monkeypatch.setattr(atomic, "_sha256_of", lambda p, n: reads.append(p) or real(p, n))
+    future = start_file_sha256(f)
+    # reference: Python's hashlib over the whole content at once
+    assert file_sha256(f) == future.result() == hashlib.sha256(data).hexdigest()
+    assert len(reads) == 1
+
+
+def test_a_changed_file_is_hashed_again(tmp_path):
+    f = tmp_path / "input.bin"
+    f.write_bytes(b"abc")
+    assert file_sha256(f) == hashlib.sha256(b"abc").hexdigest()
+    f.write_bytes(b"abd")  # same size; a later modification time
+    st = f.stat()
+    os.utime(f, ns=(st.st_atime_ns, st.st_mtime_ns + 10_000_000))
+    assert file_sha256(f) == hashlib.sha256(b"abd").hexdigest()
+    assert start_file_sha256(tmp_path / "missing.bin").exception() is not None
 
 
 def test_remove_stale_temp_files_removes_only_temporary_files(tmp_path):

@@ -19,7 +19,9 @@ import json
 import math
 import os
 import secrets
+import threading
 from collections.abc import Callable, Iterator
+from concurrent.futures import Future
 from contextlib import contextmanager
 from pathlib import Path
 from typing import IO, Any
@@ -159,17 +161,101 @@ def write_parquet_atomic(df, path: str | os.PathLike, *, compression: str = "zst
     return Path(path)
 
 
+#: Digests of files hashed by this process, by (path, size, modification and change times, inode): an
+#: input's checksum is needed by the batch (resume record) and by the pipeline (provenance); read once.
+_DIGESTS: dict[tuple, Future] = {}
+_DIGESTS_LOCK = threading.Lock()
+_DIGESTS_MAX = 64
+
+
+def _digest_key(p: Path) -> tuple | None:
+    try:
+        st = p.stat()
+    except OSError:
+        return None
+    if not p.is_file():
+        return None  # folders: their files can change without the folder's own time changing
+    return (str(p.resolve()), st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino)
+
+
+def start_file_sha256(path: str | os.PathLike) -> Future:
+    """Start hashing a file on a background thread (hashlib and file reads release the GIL).
+
+    Returns a :class:`concurrent.futures.Future` of the hex digest; a later :func:`file_sha256` of the same,
+    unchanged file waits for it instead of reading the file again. Folders and unreadable paths are hashed
+    on the spot (the future is then already done, with the digest or the error).
+    """
+    p = Path(path)
+    key = _digest_key(p)
+    if key is None:
+        fut: Future = Future()
+        try:
+            fut.set_result(file_sha256(p))
+        except BaseException as exc:  # noqa: BLE001  (handed to whoever asks for the result)
+            fut.set_exception(exc)
+        return fut
+    with _DIGESTS_LOCK:
+        fut = _DIGESTS.get(key)
+        if fut is not None:
+            return fut
+        fut = Future()
+        _DIGESTS[key] = fut
+        while len(_DIGESTS) > _DIGESTS_MAX:
+            _DIGESTS.pop(next(iter(_DIGESTS)))
+
+    def work() -> None:
+        try:
+            fut.set_result(_sha256_of(p, _CHUNK_BYTES))
+        except BaseException as exc:  # noqa: BLE001
+            with _DIGESTS_LOCK:
+                if _DIGESTS.get(key) is fut:
+                    del _DIGESTS[key]
+            fut.set_exception(exc)
+
+    threading.Thread(target=work, name="msdkit-sha256", daemon=True).start()
+    return fut
+
+
 def file_sha256(path: str | os.PathLike, *, chunk_bytes: int = _CHUNK_BYTES) -> str:
     """Return the SHA-256 hex digest of a file, read in chunks (memory does not grow with file size).
 
     A folder (an image-sequence input) is hashed over its files' relative names and contents, in sorted order.
+    A file already hashed by this process (or being hashed, :func:`start_file_sha256`) and unchanged since
+    (same size, modification time and inode) is not read again.
     """
     p = Path(path)
+    key = _digest_key(p)
+    if key is None:
+        return _sha256_of(p, chunk_bytes)
+    with _DIGESTS_LOCK:
+        fut = _DIGESTS.get(key)
+        if fut is None:
+            fut = Future()
+            fut.set_running_or_notify_cancel()
+            _DIGESTS[key] = fut
+            mine = True
+        else:
+            mine = False
+    if not mine:
+        return fut.result()
+    try:
+        digest = _sha256_of(p, chunk_bytes)
+    except BaseException as exc:
+        with _DIGESTS_LOCK:
+            if _DIGESTS.get(key) is fut:
+                del _DIGESTS[key]
+        fut.set_exception(exc)
+        raise
+    fut.set_result(digest)
+    return digest
+
+
+def _sha256_of(p: Path, chunk_bytes: int) -> str:
     h = hashlib.sha256()
     if p.is_dir():
         for f in sorted(q for q in p.rglob("*") if q.is_file()):
             h.update(f.relative_to(p).as_posix().encode() + b"\0")
-            h.update(bytes.fromhex(file_sha256(f, chunk_bytes=chunk_bytes)))
+            h.update(bytes.fromhex(_sha256_of(f, chunk_bytes)))
         return h.hexdigest()
     with open(p, "rb") as fh:
         while chunk := fh.read(chunk_bytes):
