@@ -42,6 +42,7 @@ from functools import partial
 import numpy as np
 import pandas as pd
 
+from ._threads import Beside
 from .errors import FitError, expected_got
 from .estimators import diffusion as dif
 from .estimators.alpha_fits import (
@@ -373,9 +374,18 @@ def fit_tracks(
     usable = (st.n_steps >= 2) & (st.n_pairs >= 1)
     status = np.where(usable, "ok", "too_short").astype(object)
 
+    alpha_columns = (_alpha_columns if _shared is None
+                     else partial(_alpha_columns, msd_matrix=_shared.msd_matrix))
+    alpha_kw = dict(dt=dt, t_e=t_e, R=R, n_dims=n_dims)
+    alpha_job = None
     if chosen in ("covariance", "one_step_likelihood", "likelihood"):
         kind = {"covariance": "covariance", "one_step_likelihood": "one_step"}.get(chosen, "likelihood")
-        b, a, lo, hi, conv = _weighted_mode_tracks(st, usable, kind, n_dims=n_dims, R=R)
+        with Beside() as beside:
+            # per-track alpha (TA-MSD power-law fits) does not depend on D (sine modes): it runs in a second
+            # thread when the process may use two (msdkit._threads); the same numbers either way
+            if fit_alpha:
+                alpha_job = beside.submit(alpha_columns, tracks, st, usable.copy(), sigma_um, **alpha_kw)
+            b, a, lo, hi, conv = _weighted_mode_tracks(st, usable, kind, n_dims=n_dims, R=R)
         status[usable & ~conv] = "not_converged"
     else:  # msd_fit
         p_max = int(min(MSD_FIT_MAX_LAG, max(2, st.n_steps.max(initial=2))))
@@ -396,11 +406,10 @@ def fit_tracks(
     # anomalous exponent with a shared localisation variance
     if not fit_alpha:
         alpha = a_lo = a_hi = K = np.full(n_tr, np.nan)
-    else:
-        alpha_columns = (_alpha_columns if _shared is None
-                         else partial(_alpha_columns, msd_matrix=_shared.msd_matrix))
-        alpha, a_lo, a_hi, K = alpha_columns(tracks, st, usable, sigma_um, dt=dt, t_e=t_e, R=R,
-                                              n_dims=n_dims)
+    elif alpha_job is not None:
+        alpha, a_lo, a_hi, K = alpha_job.result()
+    else:  # msd_fit: the tracks its D could not fit are left out of alpha too
+        alpha, a_lo, a_hi, K = alpha_columns(tracks, st, usable, sigma_um, **alpha_kw)
 
     with np.errstate(invalid="ignore", divide="ignore"):
         x_red = np.where(usable, 2.0 * s / b, np.nan)
