@@ -96,6 +96,56 @@ def test_writers_round_trip_tables_and_bytes(tmp_path):
     assert (tmp_path / "b.bin").read_bytes() == b"\x00\x01"
 
 
+def _edge_and_random_floats(n, seed):
+    """Edge values of IEEE 754 doubles and random numbers over the whole double range."""
+    g = np.random.default_rng(seed)
+    edges = [0.0, -0.0, 1.0, -2.0, 0.5, 1e-4, 9.999999999999999e-05, 1e-5, 1e-7, 123456.0, 1e9,
+             9999999999.999998, 1e10, 12345678901.5, 1e15, 1e16, 1.2345e16, 1e22, 1e-300, 5e-324,
+             1.7976931348623157e308, np.inf, -np.inf, np.nan, 0.1, 1 / 3, 2e-5 / 3, 123456789012345.6,
+             9999999999999998.0]
+    parts = [g.standard_normal(n) * 10.0 ** g.integers(-320, 300, n),   # every decade
+             g.integers(-10**6, 10**6, n).astype(float),               # whole numbers
+             g.standard_normal(n) * 10.0 ** g.integers(-6, 12, n)]     # around both notation switches
+    return np.concatenate([edges, *parts])
+
+
+def test_fast_csv_text_is_byte_for_byte_what_pandas_writes(tmp_path):
+    from msdkit.io.csvtext import csv_bytes
+
+    # reference: pandas' own DataFrame.to_csv (numpy's shortest round-trip float text, csv.QUOTE_MINIMAL)
+    x = _edge_and_random_floats(20_000, seed=3)
+    n = x.size // 2
+    df = pd.DataFrame({
+        "a_um": x[:n], "b": x[n:2 * n], "track": np.arange(n, dtype=np.int64) - 7,
+        "ok": np.arange(n) % 3 == 0, "cls": np.where(np.arange(n) % 2, "normal", "sub diffusive"),
+        "count": pd.array([None if i % 5 == 0 else i for i in range(n)], dtype="Int64"),
+        "label": np.array(["a" if i % 4 else None for i in range(n)], dtype=object),
+    })
+    df.loc[3, "cls"] = np.nan
+    data = csv_bytes(df)
+    assert data is not None and data == df.to_csv(index=False).encode()
+    write_csv_atomic(df, tmp_path / "t.csv")
+    assert (tmp_path / "t.csv").read_bytes() == data
+    back = pd.read_csv(tmp_path / "t.csv")
+    np.testing.assert_array_equal(back["a_um"].to_numpy(), df["a_um"].to_numpy())  # exact round trip
+
+
+@pytest.mark.parametrize("column", [
+    ["a,b", "c"],                                     # a delimiter: pandas quotes the field
+    ['say "x"', "c"],                                 # a quote
+    ["line\nbreak", "c"],                            # a line break
+    np.array([1.5, 2.5], dtype=np.float32),           # float32 text differs from float64 text
+    pd.to_datetime(["2026-01-01", "2026-01-02"]),     # a type the fast path does not format
+])
+def test_tables_the_fast_csv_text_does_not_cover_are_written_by_pandas(tmp_path, column):
+    from msdkit.io.csvtext import csv_bytes
+
+    df = pd.DataFrame({"v": column, "i": [1, 2]})
+    assert csv_bytes(df) is None
+    write_csv_atomic(df, tmp_path / "t.csv")
+    assert (tmp_path / "t.csv").read_bytes() == df.to_csv(index=False).encode()
+
+
 def test_sha256_matches_the_published_test_vector_and_hashlib_across_chunks(tmp_path):
     f = tmp_path / "abc.txt"
     f.write_bytes(b"abc")
