@@ -34,18 +34,24 @@ def analysis_threads() -> int:
 
 
 class Beside:
-    """Run callables in one extra thread, in the order given, while the caller goes on (a context manager).
+    """Run callables in one extra thread, in the order given, while the caller goes on.
 
     With a thread limit of 1 (or ``threads=1``) each callable runs at once in the calling thread. ``submit``
     returns a :class:`concurrent.futures.Future`; ``result()`` re-raises the callable's exception in the
-    caller. Leaving the block normally takes no new callables and lets those submitted run on (collect them
-    with ``result()``); leaving it with an error cancels those not yet started and waits for the running one,
-    so that no work outlives the failed call.
+    caller. Used as a context manager (any number of times), leaving the block with an error cancels the
+    callables not yet started and waits for the running one, so that no work outlives the failed call;
+    leaving it normally lets them run on (collect them with ``result()``). The thread ends when the object
+    is closed or dropped.
     """
 
     def __init__(self, threads: int | None = None) -> None:
         n = analysis_threads() if threads is None else int(threads)
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-stage") if n > 1 else None
+
+    @property
+    def threaded(self) -> bool:
+        """Whether callables run in the extra thread (False: at once, in the calling thread)."""
+        return self._pool is not None
 
     def submit(self, fn, /, *args, **kwargs) -> Future:
         if self._pool is not None:
@@ -57,10 +63,19 @@ class Beside:
             done.set_exception(exc)
         return done
 
+    def close(self, *, cancel: bool = False) -> None:
+        """Take no more callables; with ``cancel``, drop those not started and wait for the running one."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=cancel, cancel_futures=cancel)
+
     def __enter__(self) -> Beside:
         return self
 
     def __exit__(self, exc_type, exc, tb) -> None:
-        if self._pool is not None:
-            failed = exc_type is not None
-            self._pool.shutdown(wait=failed, cancel_futures=failed)
+        if exc_type is not None:
+            self.close(cancel=True)
+
+    def __del__(self) -> None:
+        pool = getattr(self, "_pool", None)
+        if pool is not None:
+            pool.shutdown(wait=False)

@@ -250,15 +250,28 @@ def analyze_tracks(
 
     viscosity_mpa_s = float(hydro.medium_viscosity_mpa_s(medium, temperature_c))
 
-    drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)
-    corrected = False
-    if drift_correction and drift_est.worth_subtracting:
-        tracks = drift.remove_drift(tracks, drift_est)
-        if sizing_tracks is not None:
-            sizing_tracks = drift.remove_drift(sizing_tracks, drift_est)
-        if sample_tracks is not None:
-            sample_tracks = drift.remove_drift(sample_tracks, drift_est)
-        corrected = True
+    beside = Beside()
+    # The stages that only read the tracks (step-model fits of the classes, size distribution, ensemble MSD)
+    # run in a second thread beside the drift and the per-track fits when the process may use two
+    # (msdkit._threads): the same computations, so the same numbers; with a limit of one thread each runs
+    # here, in this order. With a second thread the step-model fits start before the drift is known, on the
+    # tracks as they are: those are the fits the classes need when no drift is subtracted (the usual case);
+    # otherwise they are fitted again on the corrected tracks (classify_tracks uses fits of exactly the
+    # tracks it gets).
+    step_fits = None
+    if beside.threaded:
+        step_fits = beside.submit(classify.prepare_step_fits, tracks, frame_interval_s=frame_interval_s,
+                                  exposure_s=exposure_s)
+    with beside:  # an error here cancels what has not started and waits for what has
+        drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)
+        corrected = False
+        if drift_correction and drift_est.worth_subtracting:
+            tracks = drift.remove_drift(tracks, drift_est)
+            if sizing_tracks is not None:
+                sizing_tracks = drift.remove_drift(sizing_tracks, drift_est)
+            if sample_tracks is not None:
+                sample_tracks = drift.remove_drift(sample_tracks, drift_est)
+            corrected = True
 
     kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
     radius_kw = dict(temperature_c=temperature_c, viscosity_mpa_s=viscosity_mpa_s)
@@ -273,12 +286,10 @@ def analyze_tracks(
             step_sums=step_sums if sizing_tracks is None else None)
         return step_sums, dist
 
-    # The stages that only read the tracks (step-model fits of the classes, size distribution, ensemble MSD)
-    # run in a second thread beside the per-track fits when the process may use two (msdkit._threads): the
-    # same computations, so the same numbers; with a limit of one thread each runs here, in this order.
-    with Beside() as beside:  # an error here cancels what has not started and waits for what has
-        step_fits = beside.submit(classify.prepare_step_fits, tracks, frame_interval_s=frame_interval_s,
-                                  exposure_s=exposure_s)
+    with beside:
+        if step_fits is None or corrected:
+            step_fits = beside.submit(classify.prepare_step_fits, tracks, frame_interval_s=frame_interval_s,
+                                      exposure_s=exposure_s)
         sized = beside.submit(sizes)
         ens_msd = beside.submit(msd.ensemble_msd, tracks, frame_interval_s=frame_interval_s,
                                 max_lag_frames=max_lag_frames)
@@ -472,12 +483,12 @@ def movie_to_tracks(
     return tracks, used
 
 
-def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, Any], resolved: dict) -> None:
+def _write_tables(stack_dir: Path, result: AnalysisResult, resolved: dict) -> None:
+    """Write tracks.parquet, the CSV tables and resolved_config.yaml (each atomically)."""
     import yaml
 
-    from .io.atomic import write_csv_atomic, write_json_atomic, write_parquet_atomic, write_text_atomic
+    from .io.atomic import write_csv_atomic, write_parquet_atomic, write_text_atomic
 
-    stack_dir.mkdir(parents=True, exist_ok=True)
     write_parquet_atomic(result.tracks[[*schema.TRACK_COLUMNS]], stack_dir / "tracks.parquet")
     fits = result.track_fits
     first = [c for c in schema.TRACK_FIT_COLUMNS_REQUIRED if c in fits.columns]
@@ -489,12 +500,39 @@ def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, A
         write_csv_atomic(result.size_table, stack_dir / "size_distribution.csv")
     write_text_atomic(yaml.safe_dump(resolved, sort_keys=False, allow_unicode=True),
                       stack_dir / "resolved_config.yaml")
+
+
+def _write_figures(stack_dir: Path, result: AnalysisResult) -> None:
     try:
         from .report.figures import write_stack_figures
 
         write_stack_figures(stack_dir, result)
     except Exception as exc:  # a figure must never cost the numbers
         log.warning("%s: figures not written: %s", stack_dir.name, exc)
+
+
+def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, Any], resolved: dict) -> None:
+    """Write one input's folder; summary.json last, so that a complete summary means complete outputs.
+
+    The tables are written on a second thread while this one draws the figures, when the process may use
+    two (:func:`msdkit._threads.analysis_threads`; worker processes of a batch use one): pyarrow encodes,
+    compresses and formats with the GIL released, matplotlib draws with it held. A failing table write
+    is raised here after the figures are done; a failing figure is logged and never costs the tables.
+    """
+    from ._threads import analysis_threads
+    from .io.atomic import write_json_atomic
+
+    stack_dir.mkdir(parents=True, exist_ok=True)
+    if analysis_threads() > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-write") as pool:
+            tables = pool.submit(_write_tables, stack_dir, result, resolved)
+            _write_figures(stack_dir, result)
+            tables.result()
+    else:
+        _write_tables(stack_dir, result, resolved)
+        _write_figures(stack_dir, result)
     write_json_atomic(summary, stack_dir / "summary.json")
 
 

@@ -256,23 +256,25 @@ def test_fit_cache_key_sums_equal_numpy_sums(dtype):
 
 
 # ------------------------------------------------------------------------------ stages side by side (threads)
-def _small_tracks(seed=3):
+def _small_tracks(seed=3, drift_um_s=0.0):
     from msdkit.simulate import brownian_positions, positions_to_tracks
 
     g = np.random.default_rng(seed)
     pos = brownian_positions(60, 60, D_um2_s=1.0, frame_interval_s=0.05, exposure_s=0.02,
-                             localization_sd_um=0.03, rng=seed)
+                             localization_sd_um=0.03, drift_um_s=[drift_um_s, 0.0], rng=seed)
     return positions_to_tracks(pos, frame_interval_s=0.05, lengths=g.integers(12, 61, 60))
 
 
-def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch):
+@pytest.mark.parametrize("drift_um_s", [0.0, 3.0])
+def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch, drift_um_s):
     # Reference: the same analysis with every stage run in order in one thread (OMP_NUM_THREADS=1, as in a
-    # worker process); the second thread only moves independent stages, so every number is identical.
+    # worker process); the second thread only moves independent stages, so every number is identical. With
+    # a drift the step-model fits started on the uncorrected tracks are not used (fitted again).
     from msdkit import classify
     from msdkit._threads import analysis_threads
     from msdkit.pipeline import analyze_tracks
 
-    tracks = _small_tracks()
+    tracks = _small_tracks(drift_um_s=drift_um_s)
     kw = dict(frame_interval_s=0.05, exposure_s=0.02)
     monkeypatch.setenv("OMP_NUM_THREADS", "1")
     assert analysis_threads() == 1
@@ -288,6 +290,7 @@ def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch):
         for c in a.columns:
             np.testing.assert_array_equal(a[c].to_numpy(), b[c].to_numpy(), err_msg=c)
     assert repr(one.summary) == repr(two.summary)
+    assert one.summary["drift_corrected"] == (drift_um_s > 0)
 
 
 def test_thread_limit_follows_the_environment_of_worker_processes(monkeypatch):
