@@ -9,13 +9,18 @@ import numpy as np
 import pandas as pd
 
 
-def _plt():
-    import matplotlib
+def _figure(**kw):
+    """A figure on its own Agg canvas.
 
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
+    Not through pyplot: no global figure manager (figures can be drawn on any thread, and nothing has to be
+    closed) and no pyplot import (a fresh process saves its backend machinery).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
 
-    return plt
+    fig = Figure(**kw)
+    FigureCanvasAgg(fig)
+    return fig
 
 
 def _save(fig, path: Path | None, *, tight: bool = True) -> bytes:
@@ -26,7 +31,6 @@ def _save(fig, path: Path | None, *, tight: bool = True) -> bytes:
     """
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90, **({"bbox_inches": "tight"} if tight else {}))
-    _plt().close(fig)
     data = buf.getvalue()
     if path is not None:
         from ..io.atomic import write_bytes_atomic
@@ -58,8 +62,8 @@ def stack_overview_png(
     path: Path | None = None,
 ) -> bytes:
     """Four panels for one sample: tracks, ensemble MSD with the fitted line, per-track D, sizes."""
-    plt = _plt()
-    fig, axes = plt.subplots(1, 4, figsize=(17, 3.9))
+    fig = _figure(figsize=(17, 3.9))
+    axes = fig.subplots(1, 4)
     ax = axes[0]
     classes = track_fits.set_index("track")["motion_class"] if "motion_class" in track_fits else None
     palette = {"normal": "#4c72b0", "subdiffusive": "#c44e52", "superdiffusive": "#dd8452",
@@ -130,9 +134,9 @@ def write_stack_figures(stack_dir: Path, result) -> None:
 
 def batch_png(summary: pd.DataFrame, path: Path | None = None) -> bytes:
     """D with its 95 % interval and hydrodynamic diameter for every input of a batch."""
-    plt = _plt()
     ok = summary[summary["status"] == "ok"].reset_index(drop=True)
-    fig, axes = plt.subplots(1, 2, figsize=(12, max(2.5, 0.28 * len(ok) + 1.2)))
+    fig = _figure(figsize=(12, max(2.5, 0.28 * len(ok) + 1.2)))
+    axes = fig.subplots(1, 2)
     y = np.arange(len(ok))
     if len(ok):
         D = ok["D_um2_s"].to_numpy(float)
