@@ -19,11 +19,19 @@ Timings in the same run:
 
 Printed: seconds per stage and each time as a ratio to the floor and to read + floor; the same for CPU time
 (all threads of the process: on a machine shared with other jobs it moves much less with their load than the
-wall time does, so before/after comparisons use it); and the peak resident memory of this process (and of the
-``msdkit run`` process). Target: the whole analysis within 5 x read +
-floor. Also a small table (150 tracks of 20-80 points) timed the same way, best of --repeats runs, to check
-small inputs do not get slower. The machine may be shared: compare the ratios, which are measured in the
-same run, not the seconds.
+wall time does); and the peak resident memory of this process (and of the ``msdkit run`` process). Target:
+the whole analysis within 5 x read + floor.
+
+Threads: analyze_tracks runs independent stages side by side in a second thread (and fit_tracks its per-track
+alpha beside its per-track D) when the process may use more than one thread (msdkit._threads; printed as
+"analysis threads"). The stage rows time each stage alone, one after another; "analyze_tracks (whole)" is
+the wall time of the analysis as the pipeline runs it, so it is less than the sum of the stages, and its CPU
+time (all threads) can exceed its wall time. Parallel runs only pay off when the machine has a free core:
+the load averages at the start and end of the run are printed beside the figures.
+
+Also a small table (150 tracks of 20-80 points) timed the same way, best of --repeats runs, to check small
+inputs do not get slower. The machine may be shared: compare the ratios, which are measured in the same run,
+not the seconds.
 
 Usage: python benchmarks/end_to_end_speed.py [--table PATH] [--repeats 3] [--skip-big] [--run]
 """
@@ -154,6 +162,14 @@ def main() -> None:
     args = ap.parse_args()
 
     path = Path(args.table)
+    try:
+        from msdkit._threads import analysis_threads
+
+        threads = str(analysis_threads())
+    except ImportError:  # code from before the stages ran in threads
+        threads = "1 (no msdkit._threads)"
+    print(f"analysis threads {threads}; CPUs {os.cpu_count()}; load average at start "
+          + " ".join(f"{v:.2f}" for v in os.getloadavg()))
     if not args.skip_big and not path.exists():
         print("writing", path)
         make_big_table(path)
@@ -212,6 +228,7 @@ def main() -> None:
               f"{cpu / base_cpu:.1f} x (read+floor CPU)")
     if runs:
         print(f"  msdkit run peak resident memory {rss_run:.0f} MB")
+    print("load average at the end " + " ".join(f"{v:.2f}" for v in os.getloadavg()))
 
 
 if __name__ == "__main__":
