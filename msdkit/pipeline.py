@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
+import threading
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -536,6 +537,55 @@ def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, A
     write_json_atomic(summary, stack_dir / "summary.json")
 
 
+#: Modules every input needs after its file is read, in the order the stages need them: imported ahead by
+#: :func:`import_ahead` while the file is read.
+AHEAD_MODULES = ("msdkit._msd_kernels", "scipy.stats", "msdkit.drift", "msdkit.msd", "msdkit.fit",
+                 "msdkit.motion_models", "msdkit.classify", "msdkit.sizing", "matplotlib.figure",
+                 "matplotlib.backends.backend_agg", "msdkit.report.figures")
+_ahead_lock = threading.Lock()
+_ahead_thread: threading.Thread | None = None
+
+
+def _import_all(names) -> None:
+    import importlib
+
+    for name in names:
+        try:
+            module = importlib.import_module(name)
+            if name == "msdkit._msd_kernels":  # numba's first cached kernel loads its code generator
+                module.scan_order(np.zeros(2, np.int64), np.zeros(2, np.int64))
+        except Exception:  # noqa: BLE001  (the stage that needs the module imports it again and reports)
+            log.debug("importing %s ahead failed", name, exc_info=True)
+
+
+def import_ahead() -> threading.Thread | None:
+    """Import the analysis and figure modules on a background thread, once per process.
+
+    A fresh process spends seconds importing (scipy.stats, matplotlib, numba and its first cached kernel),
+    almost all of it holding the GIL; reading a track table (pyarrow) and hashing it mostly do not.
+    :func:`process_input` starts this right before reading a table and joins the thread after the read, so
+    the imports run while the file is read and the two threads never import at the same time as the stages
+    run (concurrent imports of modules that import each other can fail). Nothing is started when the process
+    may use only one thread (:func:`msdkit._threads.analysis_threads`: worker processes of a batch) or when
+    every module is already loaded. Returns the thread (or None).
+    """
+    global _ahead_thread
+    import sys
+
+    from ._threads import analysis_threads
+
+    with _ahead_lock:
+        if _ahead_thread is not None:
+            return _ahead_thread
+        missing = [m for m in AHEAD_MODULES if m not in sys.modules]
+        if not missing or analysis_threads() < 2:
+            return None
+        _ahead_thread = threading.Thread(target=_import_all, args=(missing,), name="msdkit-import",
+                                         daemon=True)
+        _ahead_thread.start()
+        return _ahead_thread
+
+
 def process_input(
     input_path: Path,
     cfg,
@@ -560,7 +610,10 @@ def process_input(
         dt = cfg.acquisition.frame_interval_s
         if dt is None:
             raise InputError(f"{input_path.name}: a track table needs acquisition.frame_interval_s in the config.")
+        ahead = import_ahead()
         tracks = read_track_table(input_path, pixel_size_um=cfg.acquisition.pixel_size_um, frame_interval_s=dt)
+        if ahead is not None:
+            ahead.join()  # the stages import nothing while another thread does
         exposure = cfg.acquisition.exposure_s if cfg.acquisition.exposure_s is not None else dt
         used: dict[str, Any] = {"acquisition": {"pixel_size_um": cfg.acquisition.pixel_size_um,
                                                 "frame_interval_s": dt, "exposure_s": exposure}}

@@ -94,3 +94,76 @@ def test_track_table_runs_through_the_same_command(tmp_path):
     fits = pd.read_csv(tmp_path / "out" / "cells" / "track_fits.csv")
     assert list(fits.columns[:6]) == ["track", "n_points", "D_um2_s", "alpha", "radius_nm", "motion_class"]
     assert len(fits) == 150
+
+
+def _small_table_config(tmp_path, name="cells"):
+    rng = np.random.default_rng(5)
+    pos = brownian_positions(60, 50, D_um2_s=1.0, frame_interval_s=0.05, exposure_s=0.02,
+                             localization_sd_um=0.03, rng=rng)
+    table = positions_to_tracks(pos, frame_interval_s=0.05, lengths=rng.integers(20, 51, size=60))
+    table[["track", "frame", "x_um", "y_um"]].to_parquet(tmp_path / f"{name}.parquet")
+    cfg = tmp_path / "run.yaml"
+    cfg.write_text(f"inputs: [{name}.parquet]\noutput_dir: out\n"
+                   "acquisition: {frame_interval_s: 0.05, exposure_s: 0.02}\nexecutor: {kind: serial}\n")
+    return cfg
+
+
+def test_outputs_are_the_same_bytes_written_beside_the_figures_or_one_after_another(tmp_path, monkeypatch):
+    import msdkit._threads
+
+    cfg = _small_table_config(tmp_path)
+    folders = {}
+    for threads in (1, 2):  # one thread: tables, then figures; two: tables on a second thread
+        monkeypatch.setattr(msdkit._threads, "analysis_threads", lambda n=threads: n)
+        out = tmp_path / f"out{threads}"
+        assert main(["run", str(cfg), "--quiet", "--output", str(out)]) == 0
+        folders[threads] = out / "cells"
+    names = sorted(p.name for p in folders[1].iterdir())
+    assert names == sorted(p.name for p in folders[2].iterdir())
+    for name in ("tracks.parquet", "track_fits.csv", "msd_ensemble.csv", "size_distribution.csv",
+                 "overview.png", "resolved_config.yaml"):
+        assert (folders[1] / name).read_bytes() == (folders[2] / name).read_bytes(), name
+
+
+def test_a_failing_figure_costs_no_table_and_the_summary_is_written(tmp_path, monkeypatch):
+    import msdkit.report.figures
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("figure failed (simulated)")
+
+    monkeypatch.setattr(msdkit.report.figures, "write_stack_figures", broken)
+    cfg = _small_table_config(tmp_path)
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    folder = tmp_path / "out" / "cells"
+    assert not (folder / "overview.png").exists()
+    for name in ("tracks.parquet", "track_fits.csv", "msd_ensemble.csv", "summary.json"):
+        assert (folder / name).is_file(), name
+
+
+def test_analysis_and_figure_modules_are_imported_ahead_on_a_background_thread():
+    import os
+    import subprocess
+    import sys
+    import textwrap
+
+    code = textwrap.dedent("""
+        import sys
+        import msdkit.pipeline as p
+        assert not any(m in sys.modules for m in ("msdkit.classify", "matplotlib.figure"))
+        t = p.import_ahead()
+        assert t is not None and p.import_ahead() is t  # once per process
+        t.join()
+        print(sorted(set(p.AHEAD_MODULES) - set(sys.modules)))
+    """)
+    from msdkit._threads import analysis_threads
+
+    env = {k: v for k, v in os.environ.items() if k not in ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")}
+    env["NUMBA_NUM_THREADS"] = "2"
+    if analysis_threads() < 2 and len(os.sched_getaffinity(0)) < 2:
+        pytest.skip("one CPU: nothing is imported ahead")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"
+    one = subprocess.run([sys.executable, "-c", "import msdkit.pipeline as p; print(p.import_ahead())"],
+                         capture_output=True, text=True, env={**env, "OMP_NUM_THREADS": "1"}, timeout=300)
+    assert one.stdout.strip() == "None"  # one thread allowed (a batch's worker process): nothing started
