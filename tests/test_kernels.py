@@ -323,3 +323,48 @@ def test_stages_beside_the_caller_keep_their_order_and_hand_back_errors(threads)
     with pytest.raises(ZeroDivisionError):
         bad.result()
     assert done == [1, 2]
+
+
+def _g_dg_reference(lags, alpha):
+    """g_alpha(t) and its alpha derivative as msdkit.estimators.anomalous._Lags.g_dg computed them with every
+    branch evaluated and masked by numpy.where (the numpy expressions the branch skipping replaces)."""
+    a = alpha
+    ta = np.exp(a * lags.lt)
+    T, u = lags.T, lags.u
+    c = (a + 1.0) * (a + 2.0)
+    dc = 2.0 * a + 3.0
+    pp = np.exp((a + 2.0) * lags.lp)
+    pm = np.where(lags.zero, 0.0, np.exp((a + 2.0) * lags.lm))
+    p0 = np.exp((a + 2.0) * lags.lt)
+    num = pp + pm - 2.0 * p0
+    dnum = pp * lags.lp + np.where(lags.zero, 0.0, pm * lags.lm) - 2.0 * p0 * lags.lt
+    direct = num / (T * T * c)
+    d_direct = dnum / (T * T * c) - direct * dc / c
+    A = a * (a - 1) / 12.0
+    B = a * (a - 1) * (a - 2) * (a - 3) / 360.0
+    dA = (2 * a - 1) / 12.0
+    dB = (4 * a**3 - 18 * a**2 + 22 * a - 6) / 360.0
+    ser = ta * (1.0 + A * u * u + B * u**4)
+    d_ser = ser * lags.lt + ta * (dA * u * u + dB * u**4)
+    Ta = np.exp(a * lags.lT)
+    tail = 2.0 * Ta / c
+    d_tail = tail * lags.lT - tail * dc / c
+    return np.where(lags.series, ser, direct) - tail, np.where(lags.series, d_ser, d_direct) - d_tail
+
+
+@pytest.mark.parametrize("t, exposure_s", [
+    (np.array([0.05, 0.1, 0.2, 0.5, 1.0]), 0.02),  # the direct branch only
+    (np.array([0.05, 0.1, 0.2, 0.5, 1.0]), 0.05),  # a lag within the exposure (t - T = 0)
+    (np.array([0.05, 0.5, 5.0, 50.0]), 0.02),  # both branches (T/t < 0.01 from 5 s on)
+    (np.array([5.0, 50.0]), 0.02),  # the series only
+])
+def test_blurred_power_law_skips_only_branches_no_lag_takes_bit_for_bit(t, exposure_s):
+    # Reference: the same numpy expressions with both branches evaluated and masked by numpy.where.
+    from msdkit.estimators import anomalous as an
+
+    lags = an._Lags(t, exposure_s)
+    alpha = np.linspace(0.05, 1.95, 31)[:, None]
+    g, dg = lags.g_dg(alpha)
+    g_ref, dg_ref = _g_dg_reference(lags, alpha)
+    np.testing.assert_array_equal(g, g_ref)
+    np.testing.assert_array_equal(dg, dg_ref)

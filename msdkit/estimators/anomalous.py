@@ -63,9 +63,16 @@ class _Lags:
             self.zero = diff <= 0
             self.lm = np.log(np.where(self.zero, 1.0, diff))
             self.lT = np.log(self.T)
+            # which branches the lags need (the other one's values would only be masked out)
+            self.any_series, self.all_series = bool(self.series.any()), bool(self.series.all())
+            self.any_zero = bool(self.zero.any())
 
     def g_dg(self, alpha):
-        """g_alpha(t) and d g / d alpha for alpha of shape (n_rows, 1)."""
+        """g_alpha(t) and d g / d alpha for alpha of shape (n_rows, 1).
+
+        Each value is computed by the same operations in the same order whichever branches the lags need;
+        a branch no lag takes (the short-exposure series, lags within the exposure) is not evaluated.
+        """
         a = alpha
         ta = np.exp(a * self.lt)
         if self.T <= 0:
@@ -73,22 +80,34 @@ class _Lags:
         T, u = self.T, self.u
         c = (a + 1.0) * (a + 2.0)
         dc = 2.0 * a + 3.0
-        pp = np.exp((a + 2.0) * self.lp)
-        pm = np.where(self.zero, 0.0, np.exp((a + 2.0) * self.lm))
-        p0 = np.exp((a + 2.0) * self.lt)
-        num = pp + pm - 2.0 * p0
-        dnum = pp * self.lp + np.where(self.zero, 0.0, pm * self.lm) - 2.0 * p0 * self.lt
-        direct = num / (T * T * c)
-        d_direct = dnum / (T * T * c) - direct * dc / c
+        Ta = np.exp(a * self.lT)
+        tail = 2.0 * Ta / c
+        d_tail = tail * self.lT - tail * dc / c
+        if not self.all_series:
+            a2 = a + 2.0
+            pp = np.exp(a2 * self.lp)
+            p0 = np.exp(a2 * self.lt)
+            if self.any_zero:
+                pm = np.where(self.zero, 0.0, np.exp(a2 * self.lm))
+                num = pp + pm - 2.0 * p0
+                dnum = pp * self.lp + np.where(self.zero, 0.0, pm * self.lm) - 2.0 * p0 * self.lt
+            else:
+                pm = np.exp(a2 * self.lm)
+                num = pp + pm - 2.0 * p0
+                dnum = pp * self.lp + pm * self.lm - 2.0 * p0 * self.lt
+            TTc = T * T * c
+            direct = num / TTc
+            d_direct = dnum / TTc - direct * dc / c
+            if not self.any_series:
+                return direct - tail, d_direct - d_tail
         A = a * (a - 1) / 12.0
         B = a * (a - 1) * (a - 2) * (a - 3) / 360.0
         dA = (2 * a - 1) / 12.0
         dB = (4 * a**3 - 18 * a**2 + 22 * a - 6) / 360.0
         ser = ta * (1.0 + A * u * u + B * u**4)
         d_ser = ser * self.lt + ta * (dA * u * u + dB * u**4)
-        Ta = np.exp(a * self.lT)
-        tail = 2.0 * Ta / c
-        d_tail = tail * self.lT - tail * dc / c
+        if self.all_series:
+            return ser - tail, d_ser - d_tail
         g = np.where(self.series, ser, direct) - tail
         dg = np.where(self.series, d_ser, d_direct) - d_tail
         return g, dg
@@ -98,8 +117,9 @@ def _model(theta, lags: _Lags, s):
     """Per-axis MSD and its Jacobian in (ln K, alpha[, s]) for rows of theta."""
     g, dg = lags.g_dg(theta[:, 1:2])
     K = np.exp(theta[:, 0:1])
-    mu = 2 * K * g + 2 * s
-    J = [2 * K * g, 2 * K * dg]
+    Kg = 2 * K * g
+    mu = Kg + 2 * s
+    J = [Kg, 2 * K * dg]
     if theta.shape[1] == 3:
         J.append(np.full_like(mu, 2.0))
     return mu, np.stack(J, axis=2)
