@@ -564,10 +564,14 @@ def test_pooled_alpha_with_per_unit_sums_equals_run_by_run_sums():
     # Reference: Σ_runs of P_run @ (w / spec)ᵀ run by run (numpy matrix products), against which the pooled
     # likelihood of _pooled_spectrum_alpha (periodograms summed per unit first) is checked through its result:
     # the profile over alpha computed here directly from the run-by-run sums must have the same maximiser.
+    # Fixed seed (a deterministic property on random data): the library refines the maximum in the noise ratio
+    # and in alpha, this grid profile does not, so for about 1 sample in 30 the two maxima straddle a half
+    # grid step (7 of 200 seeds, measured). With seed 7 the refined alpha is 0.002 from a grid point, and a
+    # log-determinant term weighted 0.97 or Q without the frequency weights still fails the check (measured).
     from msdkit.classify import _pooled_spectrum_alpha
     from msdkit.motion_models import ALPHA_GRID, NOISE_RATIO_GRID, _bank
 
-    g = np.random.default_rng()
+    g = np.random.default_rng(7)
     pos = fbm_positions(30, 41, alpha=0.7, K_um2_s_alpha=0.2, frame_interval_s=DT, localization_sd_um=0.01,
                         rng=g)
     runs = list(pos)
