@@ -10,7 +10,7 @@ import pandas as pd
 
 
 def _figure(**kw):
-    """A figure on its own Agg canvas.
+    """Return a figure on its own Agg canvas.
 
     Not through pyplot: no global figure manager (figures can be drawn on any thread, and nothing has to be
     closed) and no pyplot import (a fresh process saves its backend machinery).
@@ -70,11 +70,20 @@ def stack_overview_png(
                "confined": "#8172b3", "directed": "#55a868", "immobile": "#7f7f7f", "undetermined": "#bbbbbb"}
     from matplotlib.collections import LineCollection
 
-    segments, colours = [], []
-    for tid, g in _first_tracks(tracks, 400).groupby("track", sort=False):
-        cls = classes.get(tid, "undetermined") if classes is not None else "normal"
-        segments.append(np.column_stack([g["x_um"].to_numpy(float), g["y_um"].to_numpy(float)]))
-        colours.append(palette.get(cls, "#4c72b0"))
+    shown = _first_tracks(tracks, 400)
+    t = shown["track"].to_numpy()
+    if t.size and t.dtype.kind in "iu" and bool(np.all(t[1:] >= t[:-1])):  # sorted: each track is one run
+        starts = np.flatnonzero(np.r_[True, t[1:] != t[:-1]])
+        xy = np.column_stack([shown["x_um"].to_numpy(float), shown["y_um"].to_numpy(float)])
+        ids, segments = t[starts].tolist(), np.split(xy, starts[1:])
+    else:
+        ids, segments = [], []
+        for tid, g in shown.groupby("track", sort=False):
+            ids.append(tid)
+            segments.append(np.column_stack([g["x_um"].to_numpy(float), g["y_um"].to_numpy(float)]))
+    cls_of = classes.to_dict() if classes is not None else {}
+    colours = [palette.get(cls_of.get(tid, "undetermined") if classes is not None else "normal", "#4c72b0")
+               for tid in ids]
     if segments:  # one collection for all shown tracks draws much faster than one line each
         ax.add_collection(LineCollection(segments, colors=colours, linewidths=0.6))
         ax.autoscale_view()
