@@ -554,6 +554,12 @@ def run_batch(
                                    process=process))
         if rows:
             log.info("%d input(s) already complete from an earlier run (use force to recompute)", len(rows))
+        if tasks and ex_cfg.kind == "serial" and tasks[0].input_sha256 is None:
+            # this process runs the first input next: its checksum is read (GIL released) while the
+            # summary's modules are imported; run_task then takes the same digest
+            from .io.atomic import start_file_sha256
+
+            start_file_sha256(tasks[0].input_path)
         if tasks or not (out / SUMMARY_FILE).exists():
             write_summary([rows[i] for i in sorted(rows)], out)
 
