@@ -14,7 +14,11 @@ workers already fill the cores; common practice), so there every stage runs in t
 from __future__ import annotations
 
 import os
+import threading
 from concurrent.futures import Future, ThreadPoolExecutor
+
+#: A flag one thread sets to tell work started ahead of need in another thread to stop (threading.Event).
+StopFlag = threading.Event
 
 #: Environment variables that cap the threads of one process (the first two are set to 1 in worker processes).
 _LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")

@@ -336,12 +336,17 @@ def _fingerprint(tracks: pd.DataFrame, *extra) -> str:
     return "|".join(parts)
 
 
-def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int) -> _Fits:
-    """Fit all models to all tracks (the last two results are kept: sample_motion reuses classify's fits)."""
+def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int,
+             stop=None) -> _Fits:
+    """Fit all models to all tracks (the last two results are kept: sample_motion reuses classify's fits).
+
+    ``stop`` (a threading.Event): checked between the heavy parts; when set, motion_models.Stopped is raised
+    and nothing is kept.
+    """
     key = _fingerprint(tracks, float(frame_interval_s), float(exposure_s), int(min_points))
     if key in _FIT_CACHE:
         return _FIT_CACHE[key]
-    fits = _fit_all_uncached(tracks, frame_interval_s, exposure_s, min_points)
+    fits = _fit_all_uncached(tracks, frame_interval_s, exposure_s, min_points, stop)
     with _FIT_CACHE_LOCK:  # fits may be prepared in another thread (prepare_step_fits)
         while len(_FIT_CACHE) >= 2:
             _FIT_CACHE.pop(next(iter(_FIT_CACHE)))
@@ -350,20 +355,32 @@ def _fit_all(tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, m
 
 
 def prepare_step_fits(tracks: pd.DataFrame, *, frame_interval_s: float, exposure_s: float | None = None,
-                      min_points: int = 10) -> None:
+                      min_points: int = 10, stop=None) -> bool:
     """Fit the step models of :func:`classify_tracks` and :func:`sample_motion` ahead of their call.
 
     The fits depend on the tracks only, so the pipeline computes them in a second thread while the
     per-track D and alpha are fitted; the next :func:`classify_tracks` (or :func:`sample_motion`) with the
     same tracks, times and ``min_points`` takes them from the cache (the last two tables are kept) instead
     of fitting again. The results are the same numbers either way.
+
+    ``stop`` (a threading.Event) is checked between the heavy parts: once it is set the fitting stops, nothing
+    is kept and False is returned (True when the fits were made or found).
     """
-    _fit_all(tracks, frame_interval_s, _check_tracks(tracks, frame_interval_s, exposure_s), min_points)
+    from .motion_models import Stopped
+
+    exposure = _check_tracks(tracks, frame_interval_s, exposure_s)
+    try:
+        _fit_all(tracks, frame_interval_s, exposure, min_points, stop)
+    except Stopped:
+        return False
+    return True
 
 
 def _fit_all_uncached(
-    tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int
+    tracks: pd.DataFrame, frame_interval_s: float, exposure_s: float, min_points: int, stop=None
 ) -> _Fits:
+    from .motion_models import _check as check_stop
+
     arr = _track_arrays(tracks)
     T = arr.ids.size
     dt = float(frame_interval_s)
@@ -378,9 +395,10 @@ def _fit_all_uncached(
     periodograms: dict = {}
     for n_pts in np.unique(span[usable]):
         idx = np.flatnonzero(usable & (span == n_pts))
+        check_stop(stop)
         X = _stack_positions(arr.positions, arr.xyz, arr.starts, arr.gapped, idx, int(n_pts))
         steps = np.diff(X, axis=1)
-        f = fit_step_models(steps, exposure_ratio=e)
+        f = fit_step_models(steps, exposure_ratio=e, stop=stop)
         periodograms[int(n_pts)] = (idx, f.periodogram)
         Ns = steps.shape[1]
         ll["immobile"][idx] = f.ll_immobile

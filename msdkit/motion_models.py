@@ -450,7 +450,17 @@ def _end_to_end(steps: np.ndarray) -> np.ndarray:
     return steps.sum(axis=1)
 
 
-def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float = 1.920729) -> StepFits:
+class Stopped(Exception):
+    """Raised by :func:`fit_step_models` when its ``stop`` flag is set (its caller no longer needs it)."""
+
+
+def _check(stop) -> None:
+    if stop is not None and stop.is_set():
+        raise Stopped
+
+
+def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float = 1.920729,
+                    stop=None) -> StepFits:
     """Fit the step models to tracks of one length.
 
     Parameters
@@ -460,6 +470,9 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
         Exposure over frame interval, in [0, 1].
     ci_drop : float, default=1.92 (χ²₁ 95 % / 2)
         Drop of the profile log-likelihood that bounds the alpha interval.
+    stop : threading.Event, optional
+        Checked between the heavy parts; when set, :class:`Stopped` is raised (fits started ahead of need,
+        see :func:`msdkit.classify.prepare_step_fits`).
 
     Returns
     -------
@@ -468,6 +481,7 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     T, N, n_axes = steps.shape
     bank = _bank(N, round(float(exposure_ratio), 4))
     P, Pd = _periodograms_with_free_mean(steps, bank.taper)  # Pd: for the free-mean (directed) model
+    _check(stop)
     w = bank.weights
     A = ALPHA_GRID.size
 
@@ -491,7 +505,9 @@ def fit_step_models(steps: np.ndarray, *, exposure_ratio: float, ci_drop: float 
     brown_scale = sc_f[:, i1]
     brown_noise = brown_scale * NOISE_RATIO_GRID[ir_f[:, i1]]
 
+    _check(stop)
     cprof, _, ir_c, sc_c = _profile_grid(P, w, bank.conf, bank.noise, n_axes)  # (T, C)
+    _check(stop)
     ic = np.argmax(cprof, axis=1)
     C = bank.tau.size
     cinner = (ic >= 1) & (ic <= C - 2)

@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from . import schema
-from ._threads import Beside
+from ._threads import Beside, StopFlag
 from ._version import __version__
 from .errors import FitError, InputError, expected_got
 
@@ -260,13 +260,15 @@ def analyze_tracks(
     # otherwise they are fitted again on the corrected tracks (classify_tracks uses fits of exactly the
     # tracks it gets).
     step_fits = None
+    early_stop = StopFlag()  # set when a drift is subtracted: the fits started ahead then stop where they are
     if beside.threaded:
         step_fits = beside.submit(classify.prepare_step_fits, tracks, frame_interval_s=frame_interval_s,
-                                  exposure_s=exposure_s)
+                                  exposure_s=exposure_s, stop=early_stop)
     with beside:  # an error here cancels what has not started and waits for what has
         drift_est = drift.estimate_drift(tracks, frame_interval_s=frame_interval_s)
         corrected = False
         if drift_correction and drift_est.worth_subtracting:
+            early_stop.set()
             tracks = drift.remove_drift(tracks, drift_est)
             if sizing_tracks is not None:
                 sizing_tracks = drift.remove_drift(sizing_tracks, drift_est)

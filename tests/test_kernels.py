@@ -368,3 +368,26 @@ def test_blurred_power_law_skips_only_branches_no_lag_takes_bit_for_bit(t, expos
     g_ref, dg_ref = _g_dg_reference(lags, alpha)
     np.testing.assert_array_equal(g, g_ref)
     np.testing.assert_array_equal(dg, dg_ref)
+
+
+def test_step_fits_started_ahead_stop_when_told_and_keep_nothing():
+    # Reference: classify_tracks fitting on its own (the contract of the fit cache: only finished fits of
+    # exactly these tracks are reused).
+    import threading
+
+    from msdkit import classify
+
+    tracks = _small_tracks(seed=5)
+    kw = dict(frame_interval_s=0.05, exposure_s=0.02)
+    classify._FIT_CACHE.clear()
+    stop = threading.Event()
+    stop.set()
+    assert classify.prepare_step_fits(tracks, stop=stop, **kw) is False
+    assert not classify._FIT_CACHE
+    assert classify.prepare_step_fits(tracks, stop=threading.Event(), **kw) is True
+    assert len(classify._FIT_CACHE) == 1
+    ahead = classify.classify_tracks(tracks, **kw)
+    classify._FIT_CACHE.clear()
+    alone = classify.classify_tracks(tracks, **kw)
+    for c in alone.columns:
+        np.testing.assert_array_equal(ahead[c].to_numpy(), alone[c].to_numpy(), err_msg=c)
