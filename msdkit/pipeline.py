@@ -10,6 +10,7 @@ import dataclasses
 import logging
 import math
 import threading
+import time
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -613,7 +614,9 @@ def process_input(
         if dt is None:
             raise InputError(f"{input_path.name}: a track table needs acquisition.frame_interval_s in the config.")
         ahead = import_ahead()
+        t_read = time.perf_counter()
         tracks = read_track_table(input_path, pixel_size_um=cfg.acquisition.pixel_size_um, frame_interval_s=dt)
+        log.info("%s: read %d positions in %.2f s", stack_name, len(tracks), time.perf_counter() - t_read)
         if ahead is not None:
             ahead.join()  # the stages import nothing while another thread does
         exposure = cfg.acquisition.exposure_s if cfg.acquisition.exposure_s is not None else dt
@@ -630,6 +633,7 @@ def process_input(
         sample_tracks = _with_min_points(tracks, an.sample_min_track_points, counts)
         tracks = _with_min_points(tracks, cfg.linking.min_track_points, counts)
         step_limits = {k: used["sizing"][k] for k in ("max_step_um", "step_loss_per_um2")}
+    t_analysis = time.perf_counter()
     result = analyze_tracks(
         tracks, frame_interval_s=acq["frame_interval_s"], exposure_s=acq["exposure_s"],
         temperature_c=smp.temperature_c, temperature_sd_c=smp.temperature_sd_c,
@@ -662,7 +666,10 @@ def process_input(
     resolved["acquisition"] = {**resolved["acquisition"], **acq}
     resolved["chosen_automatically"] = _jsonable({k: v for k, v in used.items() if k != "acquisition"})
     resolved["provenance"] = provenance
+    t_outputs = time.perf_counter()
+    log.info("%s: analysed in %.2f s", stack_name, t_outputs - t_analysis)
     _write_outputs(stack_dir, result, summary, resolved)
+    log.info("%s: outputs written in %.2f s", stack_name, time.perf_counter() - t_outputs)
     s = result.summary
     return InputOutcome(
         stack=stack_name, status="ok", error="", n_tracks=int(s["n_tracks"]), D_um2_s=float(s["D_um2_s"]),
