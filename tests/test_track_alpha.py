@@ -22,12 +22,18 @@ def _loglog_alpha(tracks, n_lags=4):
 
 @pytest.mark.parametrize("alpha_true", [1.0, 0.5])
 def test_reported_track_alpha_beats_a_plain_loglog_fit_on_short_noisy_tracks(alpha_true):
-    # Known truth: 300 tracks of 20-40 points of one kind of motion (Brownian, or fractional Brownian with
+    # Known truth: 600 tracks of 20-40 points of one kind of motion (Brownian, or fractional Brownian with
     # alpha 0.5) with localisation noise x = sigma^2 / (K dt^alpha) ~ 0.5, as bead and gel movies give.
-    # (With 120 tracks the error ratio below passed 0.7 for 3 of 60 seeds at alpha 0.5; with 300 its largest
-    # value over 40 seeds was 0.56, and 0.29 over 25 Brownian seeds.)
+    # Tolerance from the variance (measured over seeds): the reported alpha leans on the sample's alpha, so
+    # its mean error is about |sample alpha - truth| once that error is large. The sample alpha's SD is
+    # 0.039 at alpha 0.5 with 300 tracks (120 seeds; by that SD the ratio passed 0.7 about 1 run in 150),
+    # 0.025 with 600 (70 seeds; ratio mean 0.23, SD 0.05, largest 0.39), 0.024 Brownian with 300. The bound
+    # 0.75 x the log-log error (0.15 at alpha 0.5, 0.22 Brownian) is then a sample-alpha error of 4.2 SD at
+    # alpha 0.5 (more when Brownian); a reported alpha no better than the log-log fit fails it, as do the
+    # track's own estimate (1.4-1.6 x the log-log error at alpha 0.5) and, at alpha 0.5, all reported
+    # alphas shifted by 0.15 (measured).
     g = np.random.default_rng()
-    dt, tau, n = 0.05, 0.02, 300
+    dt, tau, n = 0.05, 0.02, 600
     if alpha_true == 1.0:
         pos = brownian_positions(n, 40, D_um2_s=0.4, frame_interval_s=dt, exposure_s=tau,
                                  localization_sd_um=0.1, rng=g)
@@ -44,7 +50,7 @@ def test_reported_track_alpha_beats_a_plain_loglog_fit_on_short_noisy_tracks(alp
     assert len(ids) > 0.9 * n
     err_reported = np.mean([abs(fits.loc[t, "alpha"] - alpha_true) for t in ids])
     err_loglog = np.mean([abs(ll[t] - alpha_true) for t in ids])
-    assert err_reported < 0.7 * err_loglog
+    assert err_reported < 0.75 * err_loglog
     # the track's own estimate is kept beside it
     assert {"alpha_track", "alpha_track_ci95_lo", "alpha_track_ci95_hi"} <= set(fits.columns)
     # the reported interval contains the reported value and covers the truth for most tracks
