@@ -282,12 +282,15 @@ def analyze_tracks(
     size_kw = dict(frame_interval_s=frame_interval_s, exposure_s=exposure_s, n_dims=n_dims)
 
     def sizes():
-        # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs)
+        # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs); on
+        # movies spread over the tracks in proportion to their spot-fit precision (sizing.precision_scaled_sd_um)
         step_sums = sizing.track_step_sums(tracks, n_dims=n_dims)  # one pass over the table for both calls
+        table = tracks if sizing_tracks is None else sizing_tracks
+        table_sums = step_sums if sizing_tracks is None else sizing.track_step_sums(table, n_dims=n_dims)
+        sd = sizing.precision_scaled_sd_um(table, step_sums=table_sums, **size_kw)
         dist, _ = sizing.size_distribution_of_tracks(
-            tracks if sizing_tracks is None else sizing_tracks,
-            wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}), **radius_kw, **size_kw,
-            step_sums=step_sums if sizing_tracks is None else None)
+            table, localization_sd_um=sd, wall_distance_um=wall_distance_um, rng=seed, **(step_limits or {}),
+            **radius_kw, **size_kw, step_sums=table_sums)
         return step_sums, dist
 
     with beside:

@@ -778,19 +778,86 @@ def robust_localization_sd_um(
     if step_sums is None:
         step_sums = track_step_sums(tracks, n_dims=n_dims)
     _check_step_sums(step_sums, tracks, n_dims)
-    n, m = step_sums.n_steps, step_sums.n_adjacent_steps
-    m0 = step_sums.uncentred_sum_sq_um2 / (n_dims * np.maximum(n, 1))
-    m1 = step_sums.uncentred_sum_prod_um2 / (n_dims * np.maximum(m, 1))
-    R = blur_coefficient(frame_interval_s, exposure_s)
-    s2 = R * m0 + (2 * R - 1) * m1
+    n = step_sums.n_steps
+    s2, m = _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims)
     use = m >= min_adjacent_steps
     if np.sum(use) < 20:
         some = (m > 0) & (n > 0)
         return math.sqrt(max(float(np.sum(n[some] * s2[some]) / max(np.sum(n[some]), 1)), 0.0))
-    order = np.argsort(s2[use])
-    cum = np.cumsum(m[use][order]) / np.sum(m[use])
-    med = float(s2[use][order][np.searchsorted(cum, 0.5)])
-    return math.sqrt(max(med, 0.0))
+    return math.sqrt(max(_weighted_median(s2[use], m[use]), 0.0))
+
+
+def _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims):
+    """Each track's covariance-based σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ and its number of step pairs."""
+    n, m = step_sums.n_steps, step_sums.n_adjacent_steps
+    m0 = step_sums.uncentred_sum_sq_um2 / (n_dims * np.maximum(n, 1))
+    m1 = step_sums.uncentred_sum_prod_um2 / (n_dims * np.maximum(m, 1))
+    R = blur_coefficient(frame_interval_s, exposure_s)
+    return R * m0 + (2 * R - 1) * m1, m
+
+
+def precision_scaled_sd_um(
+    tracks: pd.DataFrame,
+    *,
+    frame_interval_s: float,
+    exposure_s: float,
+    n_dims: int = 2,
+    min_adjacent_steps: int = 10,
+    precision_column: str = "precision_um",
+    step_sums: TrackStepSums | None = None,
+) -> pd.Series | None:
+    """Per-track localisation SD: each track's spot-fit precision, scaled to the level its steps show.
+
+    A movie's particles differ in brightness (size, labelling, height in the focal depth), and so in how well
+    they are localised; one σ for every track over-corrects the bright ones (too small a D, too large a size)
+    and under-corrects the dim ones. The spot fit's precision (photon statistics) ranks the tracks but misses
+    what else moves a spot (motion blur of its shape, neighbours, background), which the steps measure. With
+    p_i² the mean squared precision of track i's spots and σ̂_i² its covariance-based estimate (as in
+    :func:`robust_localization_sd_um`; Vestergaard et al. 2014), each track gets
+
+        σ_i = c p_i,   c² = median over tracks of σ̂_i² / p_i²,
+
+    the median taken over tracks of at least ``min_adjacent_steps`` neighbouring step pairs, weighted by
+    their numbers of step pairs. Each ratio estimates c² without bias whatever the track's brightness, so c is
+    right for any mix of bright and dim particles (a median of σ̂² over a mix lands between the groups).
+    Tracks without a precision get c × the median precision. On simulated 80 + 250 nm mixtures the 250 nm
+    mode moves from −1…+13 % to +2…+5 % of the truth (README, "Sizing on movies").
+
+    Returns
+    -------
+    Series indexed by track (µm), or None when the table has no usable ``precision_column`` or fewer than 20
+    tracks that long (then use :func:`robust_localization_sd_um`).
+
+    References
+    ----------
+    C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014).
+    """
+    if precision_column not in tracks.columns:
+        return None
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    if step_sums is None:
+        step_sums = track_step_sums(tracks, n_dims=n_dims)
+    _check_step_sums(step_sums, tracks, n_dims)
+    s2, m = _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims)
+    p2 = pd.Series(tracks[precision_column].to_numpy(float) ** 2, index=tracks["track"].to_numpy())
+    p2 = p2[np.isfinite(p2.to_numpy()) & (p2.to_numpy() > 0)].groupby(level=0).mean()
+    p2 = p2.reindex(step_sums.ids).to_numpy(float)
+    use = (m >= min_adjacent_steps) & np.isfinite(p2)
+    if np.sum(use) < 20:
+        return None
+    w = m[use].astype(float)
+    c2 = _weighted_median(s2[use] / p2[use], w)
+    if not c2 > 0:
+        return None
+    p2 = np.where(np.isfinite(p2), p2, _weighted_median(p2[use], w))
+    return pd.Series(np.sqrt(c2 * p2), index=step_sums.ids)
+
+
+def _weighted_median(x: np.ndarray, w: np.ndarray) -> float:
+    """The value at which the cumulative weight of the sorted values first reaches half."""
+    order = np.argsort(x)
+    cum = np.cumsum(w[order]) / np.sum(w)
+    return float(x[order][np.searchsorted(cum, 0.5)])
 
 
 def _segment_table(tracks, per_track, cut_at_position, order_cols):
