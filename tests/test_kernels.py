@@ -270,7 +270,7 @@ def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch, dr
     # Reference: the same analysis with every stage run in order in one thread (OMP_NUM_THREADS=1, as in a
     # worker process); the second thread only moves independent stages, so every number is identical. With
     # a drift the step-model fits started on the uncorrected tracks are not used (fitted again).
-    from msdkit import classify
+    from msdkit import _threads, classify
     from msdkit._threads import analysis_threads
     from msdkit.pipeline import analyze_tracks
 
@@ -280,8 +280,8 @@ def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch, dr
     assert analysis_threads() == 1
     classify._FIT_CACHE.clear()
     one = analyze_tracks(tracks, **kw)
-    monkeypatch.setenv("OMP_NUM_THREADS", "2")
-    monkeypatch.setenv("NUMBA_NUM_THREADS", "2")
+    monkeypatch.setattr(_threads, "analysis_threads", lambda **_: 2)  # two threads whatever the load
+    assert _threads.Beside().threaded
     classify._FIT_CACHE.clear()
     two = analyze_tracks(tracks, **kw)
     for a, b in ((one.track_fits, two.track_fits), (one.ensemble_msd, two.ensemble_msd),
@@ -299,14 +299,17 @@ def test_thread_limit_follows_the_environment_of_worker_processes(monkeypatch):
 
     monkeypatch.delenv("NUMBA_NUM_THREADS", raising=False)
     monkeypatch.setenv("OMP_NUM_THREADS", "1")
-    assert analysis_threads() == 1
+    assert analysis_threads(load=0.0) == 1
     monkeypatch.delenv("OMP_NUM_THREADS")
     monkeypatch.setenv("NUMBA_NUM_THREADS", "1")
-    assert analysis_threads() == 1
+    assert analysis_threads(load=0.0) == 1
     monkeypatch.delenv("NUMBA_NUM_THREADS")
     import os
 
-    assert analysis_threads() == len(os.sched_getaffinity(0))
+    n = len(os.sched_getaffinity(0))
+    assert analysis_threads(load=0.0) == n
+    assert analysis_threads(load=1.0) == n  # this process alone: every CPU free for it
+    assert analysis_threads(load=n + 3.0) == 1  # other jobs keep every CPU busy: one thread
 
 
 @pytest.mark.parametrize("threads", [1, 2])
