@@ -23,11 +23,13 @@ wall time does); and the peak resident memory of this process (and of the ``msdk
 the whole analysis within 5 x read + floor.
 
 Threads: analyze_tracks runs independent stages side by side in a second thread (and fit_tracks its per-track
-alpha beside its per-track D) when the process may use more than one thread (msdkit._threads; printed as
-"analysis threads"). The stage rows time each stage alone, one after another; "analyze_tracks (whole)" is
-the wall time of the analysis as the pipeline runs it, so it is less than the sum of the stages, and its CPU
-time (all threads) can exceed its wall time. Parallel runs only pay off when the machine has a free core:
-the load averages at the start and end of the run are printed beside the figures.
+alpha beside its per-track D) when the process may use more than one thread and the machine has a CPU free
+(msdkit._threads.analysis_threads, decided from the 1-minute load average when the analysis starts; printed
+at the start and beside "analyze_tracks (whole)"). The stage rows time each stage alone, one after another;
+"analyze_tracks (whole)" is the wall time of the analysis as the pipeline runs it, so with two threads it is
+less than the sum of the stages, and its CPU time (all threads) can exceed its wall time. Parallel runs only
+pay off when the machine has a free core: the load averages at the start and end of the run are printed
+beside the figures.
 
 Also a small table (150 tracks of 20-80 points) timed the same way, best of --repeats runs, to check small
 inputs do not get slower. The machine may be shared: compare the ratios, which are measured in the same run,
@@ -89,6 +91,17 @@ def timed(fn, *a, **k):
     return out, time.perf_counter() - t0, time.process_time() - c0
 
 
+LAST_THREADS: list = []
+
+
+def _threads_now() -> str:
+    try:
+        from msdkit._threads import analysis_threads
+    except ImportError:  # code from before the stages ran in threads
+        return "1 (no msdkit._threads)"
+    return str(analysis_threads())
+
+
 def stages(tracks) -> dict[str, tuple[float, float]]:
     """(wall, CPU) seconds of each analysis stage, called as msdkit.pipeline.analyze_tracks calls them."""
     kw = dict(frame_interval_s=DT, exposure_s=EXPOSURE, n_dims=2)
@@ -114,6 +127,7 @@ def stages(tracks) -> dict[str, tuple[float, float]]:
     run("size_distribution", sizing.size_distribution_of_tracks, tracks, temperature_c=25.0,
         viscosity_mpa_s=0.89, rng=0, **kw)
     classify._FIT_CACHE.clear()
+    LAST_THREADS[:] = [_threads_now(), os.getloadavg()[0]]  # what analyze_tracks is about to decide
     res = run("analyze_tracks (whole)", analyze_tracks, tracks, frame_interval_s=DT, exposure_s=EXPOSURE)
     from msdkit.report.figures import write_stack_figures
 
@@ -162,13 +176,7 @@ def main() -> None:
     args = ap.parse_args()
 
     path = Path(args.table)
-    try:
-        from msdkit._threads import analysis_threads
-
-        threads = str(analysis_threads())
-    except ImportError:  # code from before the stages ran in threads
-        threads = "1 (no msdkit._threads)"
-    print(f"analysis threads {threads}; CPUs {os.cpu_count()}; load average at start "
+    print(f"analysis threads {_threads_now()}; CPUs {os.cpu_count()}; load average at start "
           + " ".join(f"{v:.2f}" for v in os.getloadavg()))
     if not args.skip_big and not path.exists():
         print("writing", path)
@@ -219,6 +227,8 @@ def main() -> None:
     print(head + f"  {'CPU s':>7s}  {'CPU ratio':>9s}")
     for k, (v, c) in stages(tracks).items():
         print(f"  {k:<24s} {v:7.2f}  {v / t_fft:7.1f}  {v / base:13.1f}  {c:7.2f}  {c / base_cpu:9.1f}")
+    print(f"  (analyze_tracks (whole) with {LAST_THREADS[0]} thread(s): 1-minute load average "
+          f"{LAST_THREADS[1]:.2f} when it started)")
     print(f"  peak resident memory: {rss_read:.0f} MB after reading, {peak_rss_mb():.0f} MB after the stages "
           f"(table {tracks.memory_usage(deep=True).sum() / 2**20:.0f} MB)")
     for label, (wall, own, cpu) in zip(("first", "second"), runs, strict=False):
