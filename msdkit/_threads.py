@@ -21,6 +21,9 @@ from concurrent.futures import Future, ThreadPoolExecutor
 #: A flag one thread sets to tell work started ahead of need in another thread to stop (threading.Event).
 StopFlag = threading.Event
 
+#: Environment variable that sets the threads of one analysis whatever the machine's load (still capped below).
+THREADS_VAR = "MSDKIT_THREADS"
+
 #: Environment variables that cap the threads of one process (the first two are set to 1 in worker processes).
 _LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")
 
@@ -32,7 +35,8 @@ def analysis_threads(*, load: float | None = None) -> int:
     leave free: ``load`` (default: the 1-minute load average, which counts this process too) is subtracted
     and this process added back, rounded. On a machine that other jobs keep busy a second thread only adds
     switching, extra CPU time and memory (measured on a shared 2-core machine: no faster, +10 % CPU), so the
-    stages then run one after another; the numbers are the same either way.
+    stages then run one after another; the numbers are the same either way. ``MSDKIT_THREADS`` (a whole
+    number >= 1) sets the count instead of the load, within the caps above.
     """
     try:
         n = len(os.sched_getaffinity(0))
@@ -42,6 +46,9 @@ def analysis_threads(*, load: float | None = None) -> int:
         value = os.environ.get(var, "").strip()
         if value.isdigit() and int(value) >= 1:
             n = min(n, int(value))
+    chosen = os.environ.get(THREADS_VAR, "").strip()
+    if chosen.isdigit() and int(chosen) >= 1:
+        return max(1, min(n, int(chosen)))
     if load is None:
         try:
             load = os.getloadavg()[0]

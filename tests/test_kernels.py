@@ -394,3 +394,21 @@ def test_step_fits_started_ahead_stop_when_told_and_keep_nothing():
     alone = classify.classify_tracks(tracks, **kw)
     for c in alone.columns:
         np.testing.assert_array_equal(ahead[c].to_numpy(), alone[c].to_numpy(), err_msg=c)
+
+
+def test_msdkit_threads_sets_the_count_whatever_the_load_within_the_caps(monkeypatch):
+    # Contract (msdkit._threads.analysis_threads): MSDKIT_THREADS replaces the load rule, never the caps.
+    import os
+
+    from msdkit._threads import analysis_threads
+
+    monkeypatch.delenv("OMP_NUM_THREADS", raising=False)
+    monkeypatch.delenv("NUMBA_NUM_THREADS", raising=False)
+    n = len(os.sched_getaffinity(0))
+    monkeypatch.setenv("MSDKIT_THREADS", "2")
+    assert analysis_threads(load=n + 5.0) == min(n, 2)
+    monkeypatch.setenv("OMP_NUM_THREADS", "1")
+    assert analysis_threads(load=0.0) == 1
+    monkeypatch.setenv("MSDKIT_THREADS", "zero")  # not a count: the load rule applies
+    monkeypatch.delenv("OMP_NUM_THREADS")
+    assert analysis_threads(load=n + 5.0) == 1
