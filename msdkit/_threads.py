@@ -28,7 +28,14 @@ THREADS_VAR = "MSDKIT_THREADS"
 _LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")
 
 
-def analysis_threads(*, load: float | None = None) -> int:
+#: Fewest positions (table rows) for which an analysis uses a second thread: on small tables the stages are
+#: many small numpy operations that hold the GIL, and a second thread only adds switching (150 tracks of
+#: 20-80 points, 7,500 rows: 0.92 s with two threads against 0.83 s with one; 10 M rows: 10-11 s against
+#: 16-17 s). Sizes in between were not measured; the cut is a round number well below the large case.
+MIN_ROWS_FOR_THREADS = 100_000
+
+
+def analysis_threads(*, load: float | None = None, rows: int | None = None) -> int:
     """Threads one analysis may use (>= 1).
 
     The usable CPUs, capped by OMP_NUM_THREADS / NUMBA_NUM_THREADS; one only when the machine is busy:
@@ -37,7 +44,8 @@ def analysis_threads(*, load: float | None = None) -> int:
     10.7 s with two threads against 16.1–17.2 s with one; at load 4–6 two threads were no faster and used
     ~10 % more CPU time and ~0.3 GB more memory, so a busy machine runs the stages one after another. The
     numbers are the same either way. ``MSDKIT_THREADS`` (a whole number >= 1) sets the count instead of the
-    load, within the caps above.
+    load, within the caps above. ``rows`` (the table's positions, when known): one thread below
+    :data:`MIN_ROWS_FOR_THREADS` unless ``MSDKIT_THREADS`` says otherwise.
     """
     try:
         n = len(os.sched_getaffinity(0))
@@ -50,6 +58,8 @@ def analysis_threads(*, load: float | None = None) -> int:
     chosen = os.environ.get(THREADS_VAR, "").strip()
     if chosen.isdigit() and int(chosen) >= 1:
         return max(1, min(n, int(chosen)))
+    if rows is not None and rows < MIN_ROWS_FOR_THREADS:
+        return 1
     if load is None:
         try:
             load = os.getloadavg()[0]
@@ -69,8 +79,8 @@ class Beside:
     is closed or dropped.
     """
 
-    def __init__(self, threads: int | None = None) -> None:
-        n = analysis_threads() if threads is None else int(threads)
+    def __init__(self, threads: int | None = None, *, rows: int | None = None) -> None:
+        n = analysis_threads(rows=rows) if threads is None else int(threads)
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-stage") if n > 1 else None
 
     @property

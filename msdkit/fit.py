@@ -380,7 +380,7 @@ def fit_tracks(
     alpha_job = None
     if chosen in ("covariance", "one_step_likelihood", "likelihood"):
         kind = {"covariance": "covariance", "one_step_likelihood": "one_step"}.get(chosen, "likelihood")
-        with Beside() as beside:
+        with Beside(rows=len(tracks)) as beside:
             # per-track alpha (TA-MSD power-law fits) does not depend on D (sine modes): it runs in a second
             # thread when the process may use two (msdkit._threads); the same numbers either way
             if fit_alpha:

@@ -252,7 +252,7 @@ def analyze_tracks(
 
     viscosity_mpa_s = float(hydro.medium_viscosity_mpa_s(medium, temperature_c))
 
-    beside = Beside()
+    beside = Beside(rows=len(tracks))
     # The stages that only read the tracks (step-model fits of the classes, size distribution, ensemble MSD)
     # run in a second thread beside the drift and the per-track fits when the process may use two
     # (msdkit._threads): the same computations, so the same numbers; with a limit of one thread each runs

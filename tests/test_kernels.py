@@ -310,6 +310,8 @@ def test_thread_limit_follows_the_environment_of_worker_processes(monkeypatch):
     assert analysis_threads(load=0.0) == n
     assert analysis_threads(load=n - 0.5) == n  # a CPU's worth left free by the other jobs
     assert analysis_threads(load=float(n)) == 1  # other jobs keep the CPUs busy: one thread
+    assert analysis_threads(load=0.0, rows=1000) == 1  # a small table: one thread
+    assert analysis_threads(load=0.0, rows=10**7) == n
 
 
 @pytest.mark.parametrize("threads", [1, 2])
