@@ -35,7 +35,7 @@ _LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")
 MIN_ROWS_FOR_THREADS = 100_000
 
 
-def analysis_threads(*, load: float | None = None, rows: int | None = None) -> int:
+def analysis_threads(*, load: float | None = None) -> int:
     """Threads one analysis may use (>= 1).
 
     The usable CPUs, capped by OMP_NUM_THREADS / NUMBA_NUM_THREADS; one only when the machine is busy:
@@ -44,8 +44,7 @@ def analysis_threads(*, load: float | None = None, rows: int | None = None) -> i
     10.7 s with two threads against 16.1–17.2 s with one; at load 4–6 two threads were no faster and used
     ~10 % more CPU time and ~0.3 GB more memory, so a busy machine runs the stages one after another. The
     numbers are the same either way. ``MSDKIT_THREADS`` (a whole number >= 1) sets the count instead of the
-    load, within the caps above. ``rows`` (the table's positions, when known): one thread below
-    :data:`MIN_ROWS_FOR_THREADS` unless ``MSDKIT_THREADS`` says otherwise.
+    load, within the caps above.
     """
     try:
         n = len(os.sched_getaffinity(0))
@@ -58,8 +57,6 @@ def analysis_threads(*, load: float | None = None, rows: int | None = None) -> i
     chosen = os.environ.get(THREADS_VAR, "").strip()
     if chosen.isdigit() and int(chosen) >= 1:
         return max(1, min(n, int(chosen)))
-    if rows is not None and rows < MIN_ROWS_FOR_THREADS:
-        return 1
     if load is None:
         try:
             load = os.getloadavg()[0]
@@ -71,7 +68,8 @@ def analysis_threads(*, load: float | None = None, rows: int | None = None) -> i
 class Beside:
     """Run callables in one extra thread, in the order given, while the caller goes on.
 
-    With a thread limit of 1 (or ``threads=1``) each callable runs at once in the calling thread. ``submit``
+    With a thread limit of 1 (or ``threads=1``, or ``rows`` below :data:`MIN_ROWS_FOR_THREADS` unless
+    ``MSDKIT_THREADS`` is set) each callable runs at once in the calling thread. ``submit``
     returns a :class:`concurrent.futures.Future`; ``result()`` re-raises the callable's exception in the
     caller. Used as a context manager (any number of times), leaving the block with an error cancels the
     callables not yet started and waits for the running one, so that no work outlives the failed call;
@@ -80,7 +78,10 @@ class Beside:
     """
 
     def __init__(self, threads: int | None = None, *, rows: int | None = None) -> None:
-        n = analysis_threads(rows=rows) if threads is None else int(threads)
+        n = analysis_threads() if threads is None else int(threads)
+        forced = os.environ.get(THREADS_VAR, "").strip().isdigit()
+        if threads is None and rows is not None and rows < MIN_ROWS_FOR_THREADS and not forced:
+            n = 1  # a small table (``rows`` positions): see MIN_ROWS_FOR_THREADS
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-stage") if n > 1 else None
 
     @property

@@ -281,7 +281,8 @@ def test_analysis_in_two_threads_gives_the_numbers_of_one_thread(monkeypatch, dr
     classify._FIT_CACHE.clear()
     one = analyze_tracks(tracks, **kw)
     monkeypatch.setattr(_threads, "analysis_threads", lambda **_: 2)  # two threads whatever the load
-    assert _threads.Beside().threaded
+    monkeypatch.setenv("MSDKIT_THREADS", "2")  # and whatever the table's size
+    assert _threads.Beside(rows=len(tracks)).threaded
     classify._FIT_CACHE.clear()
     two = analyze_tracks(tracks, **kw)
     for a, b in ((one.track_fits, two.track_fits), (one.ensemble_msd, two.ensemble_msd),
@@ -310,8 +311,11 @@ def test_thread_limit_follows_the_environment_of_worker_processes(monkeypatch):
     assert analysis_threads(load=0.0) == n
     assert analysis_threads(load=n - 0.5) == n  # a CPU's worth left free by the other jobs
     assert analysis_threads(load=float(n)) == 1  # other jobs keep the CPUs busy: one thread
-    assert analysis_threads(load=0.0, rows=1000) == 1  # a small table: one thread
-    assert analysis_threads(load=0.0, rows=10**7) == n
+    from msdkit._threads import Beside
+
+    assert not Beside(rows=1000).threaded  # a small table: one thread whatever the load
+    monkeypatch.setenv("MSDKIT_THREADS", "2")
+    assert Beside(rows=1000).threaded == (n >= 2)  # unless the count is set
 
 
 @pytest.mark.parametrize("threads", [1, 2])
