@@ -283,7 +283,8 @@ def analyze_tracks(
 
     def sizes():
         # the size kernel's σ: median of per-track estimates, robust to linking artefacts (sizing docs); on
-        # movies spread over the tracks in proportion to their spot-fit precision (sizing.precision_scaled_sd_um)
+        # movies spread over the tracks in proportion to their spot-fit precision
+        # (sizing.precision_scaled_sd_um)
         step_sums = sizing.track_step_sums(tracks, n_dims=n_dims)  # one pass over the table for both calls
         table = tracks if sizing_tracks is None else sizing_tracks
         table_sums = step_sums if sizing_tracks is None else sizing.track_step_sums(table, n_dims=n_dims)

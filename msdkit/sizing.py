@@ -854,7 +854,7 @@ def precision_scaled_sd_um(
 
 
 def _weighted_median(x: np.ndarray, w: np.ndarray) -> float:
-    """The value at which the cumulative weight of the sorted values first reaches half."""
+    """Return the value at which the cumulative weight of the sorted values first reaches half."""
     order = np.argsort(x)
     cum = np.cumsum(w[order]) / np.sum(w)
     return float(x[order][np.searchsorted(cum, 0.5)])

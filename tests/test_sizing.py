@@ -554,8 +554,8 @@ def _two_brightness_table(rng, n_bright, n_dim, *, sd_bright, sd_dim, precision_
     for k, sd in enumerate([sd_bright] * n_bright + [sd_dim] * n_dim):
         xy = np.cumsum(rng.normal(0.0, math.sqrt(2 * 0.05 * 0.05), (n_points, 2)), axis=0)
         xy += rng.normal(0.0, sd, (n_points, 2))
-        parts.append(pd.DataFrame({"track": k, "frame": np.arange(n_points), "x_um": xy[:, 0], "y_um": xy[:, 1],
-                                   "precision_um": sd / precision_factor}))
+        parts.append(pd.DataFrame({"track": k, "frame": np.arange(n_points), "x_um": xy[:, 0],
+                                   "y_um": xy[:, 1], "precision_um": sd / precision_factor}))
     return pd.concat(parts, ignore_index=True)
 
 
