@@ -774,12 +774,8 @@ def robust_localization_sd_um(
     ----------
     C. L. Vestergaard, P. C. Blainey & H. Flyvbjerg, Phys. Rev. E 89, 022726 (2014).
     """
-    _check_timing(frame_interval_s, exposure_s, n_dims)
-    if step_sums is None:
-        step_sums = track_step_sums(tracks, n_dims=n_dims)
-    _check_step_sums(step_sums, tracks, n_dims)
-    n = step_sums.n_steps
-    s2, m = _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims)
+    s2, step_sums = _covariance_sigma2(tracks, step_sums, frame_interval_s, exposure_s, n_dims)
+    n, m = step_sums.n_steps, step_sums.n_adjacent_steps
     use = m >= min_adjacent_steps
     if np.sum(use) < 20:
         some = (m > 0) & (n > 0)
@@ -787,13 +783,20 @@ def robust_localization_sd_um(
     return math.sqrt(max(_weighted_median(s2[use], m[use]), 0.0))
 
 
-def _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims):
-    """Each track's covariance-based σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩ and its number of step pairs."""
+def _covariance_sigma2(tracks, step_sums, frame_interval_s, exposure_s, n_dims):
+    """Each track's covariance-based σ̂² = R⟨Δx²⟩ + (2R − 1)⟨Δx_k Δx_k+1⟩, and the table's step sums.
+
+    Checks the timing and ``step_sums`` (computed here when None) against the table.
+    """
+    _check_timing(frame_interval_s, exposure_s, n_dims)
+    if step_sums is None:
+        step_sums = track_step_sums(tracks, n_dims=n_dims)
+    _check_step_sums(step_sums, tracks, n_dims)
     n, m = step_sums.n_steps, step_sums.n_adjacent_steps
     m0 = step_sums.uncentred_sum_sq_um2 / (n_dims * np.maximum(n, 1))
     m1 = step_sums.uncentred_sum_prod_um2 / (n_dims * np.maximum(m, 1))
     R = blur_coefficient(frame_interval_s, exposure_s)
-    return R * m0 + (2 * R - 1) * m1, m
+    return R * m0 + (2 * R - 1) * m1, step_sums
 
 
 def precision_scaled_sd_um(
@@ -834,11 +837,8 @@ def precision_scaled_sd_um(
     """
     if precision_column not in tracks.columns:
         return None
-    _check_timing(frame_interval_s, exposure_s, n_dims)
-    if step_sums is None:
-        step_sums = track_step_sums(tracks, n_dims=n_dims)
-    _check_step_sums(step_sums, tracks, n_dims)
-    s2, m = _covariance_sigma2(step_sums, frame_interval_s, exposure_s, n_dims)
+    s2, step_sums = _covariance_sigma2(tracks, step_sums, frame_interval_s, exposure_s, n_dims)
+    m = step_sums.n_adjacent_steps
     p2 = pd.Series(tracks[precision_column].to_numpy(float) ** 2, index=tracks["track"].to_numpy())
     p2 = p2[np.isfinite(p2.to_numpy()) & (p2.to_numpy() > 0)].groupby(level=0).mean()
     p2 = p2.reindex(step_sums.ids).to_numpy(float)
