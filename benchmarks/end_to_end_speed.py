@@ -22,6 +22,9 @@ Printed: seconds per stage and each time as a ratio to the floor and to read + f
 wall time does); and the peak resident memory of this process (and of the ``msdkit run`` process). Target:
 the whole analysis within 5 x read + floor.
 
+Memory: analyze_tracks keeps freed memory mapped for reuse and leaves numpy's huge-page advice off while it
+runs (msdkit._memory; MSDKIT_KEEP_FREED_MEMORY=0 switches that off); each stage row runs the same way.
+
 Threads: analyze_tracks runs independent stages side by side in a second thread (and fit_tracks its per-track
 alpha beside its per-track D) when the process may use more than one thread and the machine has a CPU free
 (msdkit._threads.analysis_threads, decided from the 1-minute load average when the analysis starts; printed
@@ -94,6 +97,17 @@ def timed(fn, *a, **k):
 LAST_THREADS: list = []
 
 
+def _memory_kept():
+    """msdkit._memory.freed_memory_kept (what analyze_tracks runs in), or nothing for code from before it."""
+    try:
+        from msdkit._memory import freed_memory_kept
+    except ImportError:
+        import contextlib
+
+        return contextlib.nullcontext()
+    return freed_memory_kept()
+
+
 def _threads_now() -> str:
     try:
         from msdkit._threads import analysis_threads
@@ -108,7 +122,8 @@ def stages(tracks) -> dict[str, tuple[float, float]]:
     t: dict[str, tuple[float, float]] = {}
 
     def run(key, fn, *a, **k):
-        out, wall, cpu = timed(fn, *a, **k)
+        with _memory_kept():  # as inside analyze_tracks (which keeps it itself)
+            out, wall, cpu = timed(fn, *a, **k)
         t[key] = (wall, cpu)
         return out
 

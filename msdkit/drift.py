@@ -152,16 +152,17 @@ def _robust_scale(x: np.ndarray) -> float:
     return float(1.4826 * k.median_abs_deviation(x, k.median(x)))
 
 
-def _winsorise(d: np.ndarray, k: float = 6.0, return_scales: bool = False):
+def _winsorise(d: np.ndarray, k: float = 6.0, return_scales: bool = False, in_place: bool = False):
     """Clip each axis at median ± k robust SD (guards against linking errors; no effect on Gaussian steps).
 
     With ``return_scales``, also the robust SD of each axis, which clipping at k > 1 robust SD leaves
     unchanged (median and median absolute deviation are order statistics inside the clip bounds), so it is
-    the robust SD of the clipped steps too.
+    the robust SD of the clipped steps too. With ``in_place``, ``d`` itself is clipped (each axis after its
+    own median and scale are taken) and returned.
     """
     from . import _msd_kernels as kern
 
-    out = d.copy()
+    out = d if in_place else d.copy()
     scales = np.zeros(d.shape[1])
     for j in range(d.shape[1]):
         x = d[:, j]
@@ -331,7 +332,7 @@ def estimate_drift(
             dt,
             "no track has two positions",
         )
-    d, axis_scales = _winsorise(d, return_scales=True)
+    d, axis_scales = _winsorise(d, return_scales=True, in_place=True)  # d is this call's own array
     n_tr = int(tid[-1]) + 1  # tid is non-decreasing
     first = int(frames_all[0])
     last = int(frames_all[-1])

@@ -60,6 +60,22 @@ def collect_steps(tracks: pd.DataFrame, n_dims: int) -> Steps:
     )
 
 
+def _axis_power(coef: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Sum over the last axis of coef squared, into out: numpy.einsum("smd,smd->sm", coef, coef) bit for bit.
+
+    For one or two axes as products added in axis order (the order einsum adds them in), written straight into
+    ``out`` instead of a fresh array that is then copied; three axes go through einsum itself, whose sum of
+    three products is ordered otherwise.
+    """
+    if coef.shape[-1] > 2:
+        out[...] = np.einsum("smd,smd->sm", coef, coef)
+        return out
+    np.multiply(coef[..., 0], coef[..., 0], out=out)
+    for j in range(1, coef.shape[-1]):
+        out += coef[..., j] * coef[..., j]
+    return out
+
+
 def sine_modes(st: Steps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Discrete-sine-transform modes of every segment's steps.
 
@@ -91,11 +107,11 @@ def sine_modes(st: Steps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         if np.array_equal(st.seg_start[grp], s0 + m * np.arange(grp.size)):  # back to back: views
             sl = slice(s0, s0 + m * grp.size)
             coef = scipy.fft.dst(st.steps[sl].reshape(grp.size, m, -1), type=1, axis=1, norm="ortho")
-            power[sl] = np.einsum("smd,smd->sm", coef, coef).ravel()
+            _axis_power(coef, power[sl].reshape(grp.size, m))
             lam[sl].reshape(grp.size, m)[:] = lam_m
             continue
         idx = st.seg_start[grp][:, None] + np.arange(m)[None, :]
         coef = scipy.fft.dst(st.steps[idx], type=1, axis=1, norm="ortho")  # (n_seg, m, n_dims)
-        power[idx] = np.einsum("smd,smd->sm", coef, coef)
+        power[idx] = _axis_power(coef, np.empty(coef.shape[:2]))
         lam[idx] = lam_m[None, :]
     return lam, power, st.step_track
