@@ -1,10 +1,11 @@
 """Movie → D with automatic settings on simulated movies of 100 nm beads in water at 25 °C, across scenes.
 
-Each scene is rendered by msdkit's simulator (pixel 0.166 µm, 30 frames/s, 15 ms exposure, 3D motion through
-a slab so particles fade in and out of focus; 256 x 256 px, 200 frames unless changed) and varied one factor
-at a time around the demo scene: photons per particle, background, density, focal depth (how fast particles
-fade), PSF width, read noise and camera offset, 8-bit data. Detection and linking run with nothing set (as
-``msdkit run`` does: settings from 40 sampled frames, detection in chunks), then the pipeline's own analysis
+Each scene is rendered by msdkit's simulator (pixel 0.166 µm, 30 frames/s, 15 ms exposure unless changed, 3D
+motion through a slab so particles fade in and out of focus; 256 x 256 px, 200 frames unless changed) and
+varied one factor at a time around the demo scene: photons per particle, background, density, focal depth (how
+fast particles fade), PSF width, read noise and camera offset, 8-bit data, exposure (25 ms and the whole frame
+interval: long exposures blur the spots). Detection and linking run with nothing set (as ``msdkit run`` does:
+settings from 40 sampled frames, detection in chunks), then the pipeline's own analysis
 (:func:`msdkit.pipeline.analyze_tracks`: drift, the "auto" estimator, Stokes–Einstein). Printed per scene:
 
 * D and radius against the Stokes–Einstein truth (D = 4.9073 µm²/s, radius 50 nm: METHODS.md, computed
@@ -68,12 +69,18 @@ SCENES: dict[str, tuple[str, dict, int]] = {
     "8bit": ("8-bit data, gain 0.2 ADU/e-, offset 10", {"gain_adu_per_electron": 0.2, "offset_adu": 10}, 8),
     "very_dim": ("250 photons", {"photons": 250}, 16),
     "low_snr": ("400 photons, bg 60, read noise 6 e-", {"photons": 400, "background_photons": 60, "read_noise_electrons": 6.0}, 16),
+    "exposure_25ms": ("exposure 25 ms of the 33 ms frame", {"exposure_s": 0.025}, 16),
+    "full_exposure": ("exposure = frame interval (33 ms)", {"exposure_s": 1.0 / 30.0}, 16),
+    "full_exposure_dim": ("exposure = frame interval, 600 photons, bg 60, read noise 6 e-",
+                          {"exposure_s": 1.0 / 30.0, "photons": 600, "background_photons": 60,
+                           "read_noise_electrons": 6.0}, 16),
 }
 
 
 def recipe(seed: int, n_frames: int, size: int, changes: dict | None = None):
     """The demo scene (synthetic_movies/demo_beads_100nm.yaml) with ``changes`` applied."""
     ch = dict(changes or {})
+    exposure_s = ch.pop("exposure_s", 0.015)
     optics = {
         "n_dims": 3,
         "wavelength_nm": 520,
@@ -110,7 +117,7 @@ def recipe(seed: int, n_frames: int, size: int, changes: dict | None = None):
             "pixel_size_um": 0.166,
             "n_frames": n_frames,
             "frame_interval_s": 1.0 / 30.0,
-            "exposure_s": 0.015,
+            "exposure_s": exposure_s,
             "temperature_c": 25.0,
             "medium": "water",
             "optics": optics,

@@ -125,7 +125,7 @@ def _alpha_given_sample(track_fits: pd.DataFrame) -> pd.DataFrame:
 
 
 #: Exposure / frame interval and in-exposure motion (RMS per axis, in spot SDs) from which a movie's D is
-#: cautioned: on simulated 100 nm beads these read D 5-21 % low (README "From movie to D", "Cautions").
+#: cautioned: on simulated 100 nm beads these read D 5-25 % low (README "From movie to D", "Cautions").
 LONG_EXPOSURE_SHARE = 0.5
 BLUR_SPOT_RATIO = 1.5
 
@@ -135,10 +135,12 @@ def exposure_caution(D_um2_s: float, *, exposure_s: float, frame_interval_s: flo
     """Return a caution when the exposure is long and particles move more than a spot width during it.
 
     Blurred spots of the fastest-moving moments are detected and localised less well than compact ones, so
-    the detected positions under-represent motion during the exposure and D reads low (on simulated 100 nm
-    beads with the exposure equal to the frame interval: -5 % at 5000 photons, -21 % at 500). The caution
-    is raised when ``exposure_s >= LONG_EXPOSURE_SHARE * frame_interval_s`` and the RMS displacement per axis
-    during the exposure, ``sqrt(2 D t_E)``, is at least ``BLUR_SPOT_RATIO`` spot SDs; ``None`` otherwise.
+    the detected positions under-represent motion during the exposure, and a track whose particle was missed
+    is often joined to another spot; D reads low (on simulated 100 nm beads with the exposure equal to the
+    frame interval: -5 % at 5000 photons, -12 % at 3000, -25 % at 600 with background 60; 25 ms of a 33 ms
+    frame: -3 %). The caution is raised when ``exposure_s >= LONG_EXPOSURE_SHARE * frame_interval_s`` and the
+    RMS displacement per axis during the exposure, ``sqrt(2 D t_E)``, is at least ``BLUR_SPOT_RATIO`` spot SDs;
+    ``None`` otherwise.
     """
     values = (D_um2_s, exposure_s, frame_interval_s, spot_sigma_um)
     if not all(v is not None and np.isfinite(v) for v in values):
@@ -153,7 +155,7 @@ def exposure_caution(D_um2_s: float, *, exposure_s: float, frame_interval_s: flo
         return None
     return (f"long exposure: {exposure_s * 1e3:.3g} ms of a {frame_interval_s * 1e3:.3g} ms frame, during "
             f"which particles move {blur_um:.2g} µm RMS per axis ({ratio:.1f} spot SDs); blurred spots are "
-            "detected and localised selectively, so D may read low (5-21 % on simulated beads). Shorten the "
+            "detected and localised selectively, so D may read low (5-25 % on simulated beads). Shorten the "
             "exposure to at most half the frame interval, or check with reference beads of similar size at "
             "these settings.")
 
