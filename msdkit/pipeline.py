@@ -138,9 +138,9 @@ def exposure_caution(D_um2_s: float, *, exposure_s: float, frame_interval_s: flo
     the detected positions under-represent motion during the exposure, and a track whose particle was missed
     is often joined to another spot; D reads low (on simulated 100 nm beads with the exposure equal to the
     frame interval: -5 % at 5000 photons, -12 % at 3000, -25 % at 600 with background 60; 25 ms of a 33 ms
-    frame: -3 %). The caution is raised when ``exposure_s >= LONG_EXPOSURE_SHARE * frame_interval_s`` and the
-    RMS displacement per axis during the exposure, ``sqrt(2 D t_E)``, is at least ``BLUR_SPOT_RATIO`` spot SDs;
-    ``None`` otherwise.
+    frame: -3 %). The caution is raised when ``exposure_s >= LONG_EXPOSURE_SHARE * frame_interval_s`` and
+    the RMS displacement per axis during the exposure, ``sqrt(2 D t_E)``, is at least ``BLUR_SPOT_RATIO``
+    spot SDs; ``None`` otherwise.
     """
     values = (D_um2_s, exposure_s, frame_interval_s, spot_sigma_um)
     if not all(v is not None and np.isfinite(v) for v in values):
