@@ -1171,3 +1171,37 @@ def lag1_steps(code, frame, c0, c1, c2, n_dims):  # pragma: no cover - compiled
                 start[k] = i
                 k += 1
     return y[:k], owner[:k], start[:k]
+
+
+# ---------------------------------------------------------------------------------- size-fit mixture products
+@numba.njit(cache=True, nogil=True)
+def mixture_density(LT, w, floor, out):  # pragma: no cover - compiled
+    """out[i] = max(sum_k LT[k, i] w[k], floor) (L @ w for LT = L.T, C-ordered (K, n)), NaN kept; returns out.
+
+    Each sum runs over k in order, whatever the machine or thread count (a threaded BLAS splits and orders
+    its sums by its thread count); the loop over i runs on vector lanes.
+    """
+    K, n = LT.shape
+    for i in range(n):
+        out[i] = 0.0
+    for k in range(K):
+        wk = w[k]
+        for i in range(n):
+            out[i] += LT[k, i] * wk
+    for i in range(n):
+        s = out[i]
+        out[i] = s if (s >= floor or s != s) else floor
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def row_weighted_sums(L, r, out):  # pragma: no cover - compiled
+    """out[k] = sum_i r[i] L[i, k] (L.T @ r) for a C-ordered L (n, K), rows added in order; returns out."""
+    n, K = L.shape
+    for k in range(K):
+        out[k] = 0.0
+    for i in range(n):
+        ri = r[i]
+        for k in range(K):
+            out[k] += L[i, k] * ri
+    return out

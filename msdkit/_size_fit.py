@@ -256,17 +256,25 @@ def _fit_penalised(L, weight, basis: _Basis, strength, params0, *, max_iter=400)
     c is preconditioned by √(1 + λΛ_j) so that every direction has unit-order curvature. Parameters in and out
     are (μ, ln s, c) in natural units.
     """
+    from ._msd_kernels import mixture_density, row_weighted_sums
+
     W = weight.sum()
     u, B, lam = basis.u, basis.B, basis.penalty
     scale = 1.0 / np.sqrt(1.0 + strength * lam)
+    L = np.ascontiguousarray(L, dtype=float)
+    LT = np.ascontiguousarray(L.T)  # both layouts, so that both products run along contiguous rows
+    s = np.empty(L.shape[0])
+    gk_sum = np.empty(L.shape[1])
 
     def fun(x):
         mu, log_s, c = x[0], _clip_log_s(x[1]), x[2:] * scale
         inv_s2 = np.exp(-2 * log_s)
         th = -0.5 * (u - mu) ** 2 * inv_s2 + B @ c
         w = _softmax(th)
-        s = np.maximum(L @ w, 1e-300)
-        gk = L.T @ (weight / s) / W
+        # the two products with the tracks' kernel rows (most of the fit's time), compiled: one thread, one
+        # order of the sums (threaded BLAS spends more time on a matrix of this size than it saves)
+        mixture_density(LT, w, 1e-300, s)  # max(L @ w, 1e-300)
+        gk = row_weighted_sums(L, weight / s, gk_sum) / W  # L.T @ (weight / s) / W
         f = -np.sum(weight * np.log(s)) / W + 0.5 * strength * np.sum(lam * c * c)
         gth = -w * (gk - 1.0)
         grad = np.empty_like(x)
@@ -285,8 +293,11 @@ def _theta_of(basis: _Basis, params):
 
 
 def _heldout_scores(L, row_max, weight, theta):
+    from ._msd_kernels import mixture_density
+
     w = _softmax(theta)
-    return weight * (np.log(np.maximum(L @ w, 1e-300)) + row_max)
+    LT = np.ascontiguousarray(np.asarray(L, dtype=float).T)
+    return weight * (np.log(mixture_density(LT, w, 1e-300, np.empty(LT.shape[1]))) + row_max)
 
 
 def _lognormal_start(n_grid, tr: _Tracks, D_to_u, step):

@@ -418,3 +418,32 @@ def test_msdkit_threads_sets_the_count_whatever_the_load_within_the_caps(monkeyp
     monkeypatch.setenv("MSDKIT_THREADS", "zero")  # not a count: the load rule applies
     monkeypatch.delenv("OMP_NUM_THREADS")
     assert analysis_threads(load=n + 5.0) == 1
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (37, 5), (2003, 83)])
+def test_size_fit_products_equal_in_order_sums_and_numpy_matmul(shape):
+    # reference: the same sums written out in numpy, term after term in the kernels' order (bit for bit), and
+    # numpy's matmul (BLAS; its own order of the sums) to 1e-13 relative
+    g = np.random.default_rng(shape[0])
+    L = g.random(shape) * g.lognormal(0.0, 2.0, shape)
+    w = g.random(shape[1])
+    r = g.random(shape[0])
+    dens = k.mixture_density(np.ascontiguousarray(L.T), w, 1e-300, np.empty(shape[0]))
+    sums = k.row_weighted_sums(L, r, np.empty(shape[1]))
+    ref_dens = np.zeros(shape[0])
+    for j in range(shape[1]):
+        ref_dens = ref_dens + L[:, j] * w[j]
+    ref_sums = np.zeros(shape[1])
+    for i in range(shape[0]):
+        ref_sums = ref_sums + L[i] * r[i]
+    assert np.array_equal(dens, np.maximum(ref_dens, 1e-300))
+    assert np.array_equal(sums, ref_sums)
+    np.testing.assert_allclose(dens, L @ w, rtol=1e-13)
+    np.testing.assert_allclose(sums, L.T @ r, rtol=1e-13)
+
+
+def test_size_fit_density_floor_keeps_nan_as_numpy_maximum():
+    L = np.array([[np.nan, 1.0], [0.0, 0.0], [1e-310, 0.0]])
+    got = k.mixture_density(np.ascontiguousarray(L.T), np.ones(2), 1e-300, np.empty(3))
+    want = np.maximum(L @ np.ones(2), 1e-300)  # numpy.maximum propagates NaN
+    assert np.isnan(got[0]) and np.array_equal(got[1:], want[1:])
