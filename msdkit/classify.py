@@ -129,10 +129,17 @@ def _track_arrays(tracks: pd.DataFrame) -> _TrackArrays:
     t = tracks["track"].to_numpy()
     f = tracks["frame"].to_numpy().astype(np.int64)
     xyz = np.column_stack([tracks[c].to_numpy(float) for c in cols])
-    ok = np.all(np.isfinite(xyz), axis=1)
+    ok = np.isfinite(xyz[:, 0])  # rows with all coordinates finite (one axis at a time: no (n, d) temporary)
+    for j in range(1, xyz.shape[1]):
+        ok &= np.isfinite(xyz[:, j])
     if not ok.all():
         t, f, xyz = t[ok], f[ok], xyz[ok]
-    in_order = t.size < 2 or bool(np.all(t[1:] >= t[:-1]) and np.all((t[1:] > t[:-1]) | (f[1:] > f[:-1])))
+    if t.dtype.kind in "iu" and t.size >= 2:  # sorted by track, frames rising in a track: one compiled scan
+        from ._msd_kernels import scan_order
+
+        in_order = scan_order(t, f)[0] == 0
+    else:
+        in_order = t.size < 2 or bool(np.all(t[1:] >= t[:-1]) and np.all((t[1:] > t[:-1]) | (f[1:] > f[:-1])))
     if not in_order:  # rows already in (track, frame) order with unique pairs need no sort
         order = np.lexsort((f, t))
         t, f, xyz = t[order], f[order], xyz[order]
