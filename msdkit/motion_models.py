@@ -250,8 +250,10 @@ def _periodograms_with_free_mean(steps: np.ndarray, taper: np.ndarray) -> tuple[
     for a in range(0, T, chunk):
         blk = steps[a : a + chunk].transpose(0, 2, 1)
         F = scipy.fft.rfft(blk * taper, axis=-1)
+        # blk.mean(axis=-1), as numpy computes it (sum along the steps' middle axis, then / N), compiled
+        mean = _end_to_end(steps[a : a + chunk]) / N
         # Σ_axes |F|² and Σ_axes |F − mean·H|² in one compiled pass (numpy's operations, in order)
-        power_with_free_mean(F, blk.mean(axis=-1), H, P[a : a + chunk], Pd[a : a + chunk])
+        power_with_free_mean(F, mean, H, P[a : a + chunk], Pd[a : a + chunk])
     return P, Pd
 
 

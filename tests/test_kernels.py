@@ -65,12 +65,13 @@ def test_compiled_noise_ratio_search_takes_the_first_nan_as_numpy_argmin():
     np.testing.assert_array_equal(v3[0, 1], [4.0, 1.0, 1.0])
 
 
-@pytest.mark.parametrize("n_axes", [1, 2, 3])
-def test_periodograms_with_free_mean_equal_the_numpy_expressions_bit_for_bit(n_axes):
-    # Reference: numpy.fft.rfft of the tapered steps, Σ_axes (re² + im²), and the same after F − mean·H.
+@pytest.mark.parametrize("n_axes, n_steps", [(1, 57), (2, 57), (3, 57), (2, 499)])
+def test_periodograms_with_free_mean_equal_the_numpy_expressions_bit_for_bit(n_axes, n_steps):
+    # Reference: numpy.fft.rfft of the tapered steps, Σ_axes (re² + im²), and the same after F − mean·H
+    # (499 steps: several chunks of tracks)
     g = np.random.default_rng(n_axes)
-    steps = g.normal(size=(150, 57, n_axes)) + 2.0
-    taper = mm.split_cosine_taper(57)
+    steps = g.normal(size=(150, n_steps, n_axes)) * 10.0 ** g.uniform(-3, 3, size=(150, 1, 1)) + 2.0
+    taper = mm.split_cosine_taper(n_steps)
     P, Pd = mm._periodograms_with_free_mean(steps, taper)
     blk = steps.transpose(0, 2, 1)
     F = np.fft.rfft(blk * taper, axis=-1)
