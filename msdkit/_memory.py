@@ -5,7 +5,8 @@ blocks). glibc's malloc gives each allocation above its mmap threshold (at most 
 kernel and hands them back when the array is freed, so every such array is faulted in and zeroed page by page
 again, and numpy asks the kernel for transparent huge pages for each of them (``madvise``), which the kernel
 may have to assemble (compaction) before it can zero them. :func:`freed_memory_kept` switches both off for the
-duration of a block: no mmap for allocations and no trimming of the heap when memory is freed, so later arrays
+duration of a block: no mmap for allocations, no trimming of the heap when memory is freed and one arena for
+threads started inside (glibc maps each array above 64 MB of a thread's own arena afresh), so later arrays
 reuse pages already mapped, and no huge-page advice (it would apply to the heap ranges the arrays reuse, one
 advice per array). On leaving the outermost block the settings go back and the free memory is handed back to
 the system (``malloc_trim``). Only where memory comes from is different: the numbers computed are the same.
@@ -23,7 +24,8 @@ a threshold is set explicitly).
 
 References
 ----------
-The GNU C Library manual, "Malloc Tunable Parameters" (``mallopt``: ``M_MMAP_MAX``, ``M_TRIM_THRESHOLD``);
+The GNU C Library manual, "Malloc Tunable Parameters" (``mallopt``: ``M_MMAP_MAX``, ``M_TRIM_THRESHOLD``,
+``M_ARENA_MAX``);
 ``malloc_trim(3)``; ``madvise(2)`` (``MADV_HUGEPAGE``); numpy's ``NUMPY_MADVISE_HUGEPAGE`` setting.
 """
 
@@ -40,6 +42,7 @@ from typing import Any, TypeVar
 # mallopt parameter numbers and glibc's defaults (malloc.h)
 _M_TRIM_THRESHOLD = -1
 _M_MMAP_MAX = -4
+_M_ARENA_MAX = -8
 _DEFAULT_TRIM_THRESHOLD = 128 * 1024
 _DEFAULT_MMAP_MAX = 65536
 #: Largest trim threshold mallopt takes (a C int): free memory at the heap's top up to this stays mapped.
@@ -50,6 +53,7 @@ SWITCH_VAR = "MSDKIT_KEEP_FREED_MEMORY"
 
 _lock = threading.Lock()
 _depth = 0
+_one_heap = False  # share_one_heap() was called: the process keeps one arena
 _libc: Any = None  # None: not looked up yet; False: not glibc
 _hugepage_before: bool | None = None
 
@@ -107,6 +111,7 @@ def freed_memory_kept() -> Iterator[None]:
             if lib is not None:
                 lib.mallopt(_M_MMAP_MAX, 0)
                 lib.mallopt(_M_TRIM_THRESHOLD, _KEEP_BYTES)
+                lib.mallopt(_M_ARENA_MAX, 1)
     try:
         yield
     finally:
@@ -116,9 +121,29 @@ def freed_memory_kept() -> Iterator[None]:
                 if lib is not None:
                     lib.mallopt(_M_MMAP_MAX, _DEFAULT_MMAP_MAX)
                     lib.mallopt(_M_TRIM_THRESHOLD, _DEFAULT_TRIM_THRESHOLD)
+                    if not _one_heap:
+                        lib.mallopt(_M_ARENA_MAX, 8 * (os.cpu_count() or 1))  # glibc's limit on 64-bit
                     lib.malloc_trim(0)
                 if _hugepage_before is not None:
                     _set_hugepage_advice(_hugepage_before)
+
+
+def share_one_heap() -> None:
+    """Let every thread started from now on allocate from the main heap (glibc's ``M_ARENA_MAX`` = 1).
+
+    For a process that runs analyses (``msdkit run``): called before it starts any thread, so that the
+    threads it starts later (checksum, imports, the analysis' second thread) all use the heap whose freed
+    memory :func:`freed_memory_kept` keeps. A thread with its own arena gets every array above 64 MB mapped
+    afresh and unmapped when freed, whatever the settings.
+    """
+    global _one_heap
+    if os.environ.get(SWITCH_VAR, "").strip() == "0":
+        return
+    lib = _glibc()
+    if lib is not None:
+        with _lock:
+            lib.mallopt(_M_ARENA_MAX, 1)
+            _one_heap = True
 
 
 F = TypeVar("F", bound=Callable[..., Any])

@@ -158,6 +158,9 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
     try:
         if args.command == "run":
+            from ._memory import share_one_heap
+
+            share_one_heap()  # before any thread starts: the analyses reuse freed memory (msdkit._memory)
             cfg = _load(args.config, executor=args.executor, workers=args.workers)
             return _run(cfg, output=args.output, force=args.force, quiet=args.quiet)
         if args.command == "simulate":
