@@ -33,7 +33,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from ._threads import Beside
 from .errors import InputError, expected_got
+from .estimators.increments import _axis_power
 from .motion_models import ALPHA_GRID, fit_step_models
 from .schema import MOTION_CLASSES, check_track_table, position_columns
 
@@ -980,6 +982,13 @@ def _heterogeneity(log_a: np.ndarray, se: np.ndarray):
     return Q / (n - 1), p, float(np.sqrt(tau2))
 
 
+def _bootstrap_weights(g: np.random.Generator, n: int, n_boot: int) -> np.ndarray | None:
+    """Bootstrap weights over n tracks (n_boot, n): multinomial counts of n draws as floats; None if n < 3."""
+    if n >= 3 and n_boot > 0:
+        return g.multinomial(n, np.full(n, 1.0 / n), size=n_boot).astype(float)
+    return None
+
+
 def sample_motion(
     tracks: pd.DataFrame,
     track_classes: pd.DataFrame,
@@ -1097,6 +1106,11 @@ def sample_motion(
     known = _known_runs(fits, runs, owner)  # whole ungapped tracks: periodograms from the fits
     alpha, alpha_ci, n_runs = _pooled_spectrum_alpha(runs, owner, e, g, n_boot, known=known)
     n_alpha = int(np.unique(owner).size)
+    # the bootstrap weights of the MSD comparison below are g's next draws: made beside the per-track sums
+    # when the analysis may use a second thread (numpy's multinomial releases the GIL; nothing else draws
+    # from g before they are collected), else here; the same numbers either way
+    beside = Beside(rows=len(tracks))
+    boot_job = beside.submit(_bootstrap_weights, g, n_used, n_boot)
 
     # class fractions
     counts = {c: int(np.sum(cls[classified] == c)) for c in MOTION_CLASSES}
@@ -1185,7 +1199,7 @@ def sample_motion(
 
             ta_sum[gi, :m] = lag_square_sums(Q, m) / (L - lags[:m])
             ta_cnt[gi, :m] = 1.0
-            e2 = np.einsum("gnj,gnj->gn", Q[:, 1 : m + 1], Q[:, 1 : m + 1])
+            e2 = _axis_power(Q[:, 1 : m + 1], np.empty((Q.shape[0], m)))  # einsum("gnj,gnj->gn"), bit for bit
             fin = np.isfinite(e2)
             ea_cnt[gi, :m] = fin
             ea[gi, :m] = np.where(fin, e2, 0.0)
@@ -1193,7 +1207,7 @@ def sample_motion(
         if L > k_eb + 1:
             dk = d1 if k_eb == 1 else Q[:, k_eb:] - Q[:, :-k_eb]  # lag 1: the same differences as d1
             eb_col[gi] = np.einsum("gij,gij->g", dk, dk) / (L - k_eb)
-        r2 = np.einsum("gij,gij->gi", d1, d1)
+        r2 = _axis_power(d1, np.empty(d1.shape[:2]))  # einsum("gij,gij->gi", d1, d1), bit for bit
         s2_[gi] = r2.sum(1)
         s4_[gi] = np.einsum("gi,gi->g", r2, r2)
 
@@ -1222,11 +1236,8 @@ def sample_motion(
     a_ta = float(_slopes(ta_mean[None])[0])
     a_ea = float(_slopes(ea_mean[None])[0])
     diff_ci = (np.nan, np.nan)
-    boot_w = (
-        g.multinomial(n_tr, np.full(n_tr, 1.0 / n_tr), size=n_boot).astype(float)
-        if (n_tr >= 3 and n_boot > 0)
-        else None
-    )
+    boot_w = boot_job.result()  # n_tr == n_used: the usable tracks
+    beside.close()
     if boot_w is not None and n_max >= 2:
         bt, be = _means(boot_w)
         diffs = _slopes(be) - _slopes(bt)
