@@ -11,10 +11,10 @@ reuse pages already mapped, and no huge-page advice (it would apply to the heap 
 advice per array). On leaving the outermost block the settings go back and the free memory is handed back to
 the system (``malloc_trim``). Only where memory comes from is different: the numbers computed are the same.
 
-Measured on the 20,000-track table (10 M rows, 2-core virtual machine, fresh processes; load 2.5-2.8):
-``analyze_tracks`` system time 4.4-7.2 s -> 1.2-1.3 s with two threads and 5.0-5.1 s -> 0.4-0.5 s with one,
-page faults 430,000 -> 250,000-590,000 (4 kB instead of 2 MB pages), peak resident memory +0.08 GB with one
-thread and +0.3 GB with two (the heap keeps the freed holes of both threads' arrays).
+Measured on the 20,000-track table (10 M rows, 2-core virtual machine, fresh processes, load 1-3):
+``analyze_tracks`` system time 6.4-7.2 s -> 0.8-0.9 s with two threads and 5.0-5.1 s -> 0.4-0.5 s with one
+(page faults 430,000 -> 350,000 and 250,000, of 4 kB instead of partly 2 MB pages); peak resident memory
++0.2 GB with two threads and +0.1 GB with one (the heap keeps freed holes); ``msdkit run`` +0.05-0.08 GB.
 
 ``MSDKIT_KEEP_FREED_MEMORY=0`` in the environment switches all of this off (for a process that must keep its
 peak memory low). On other C libraries (macOS, musl, Windows) only the huge-page advice is switched.
