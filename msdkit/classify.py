@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from ._threads import Beside
 from .errors import InputError, expected_got
@@ -76,11 +76,11 @@ CLASS_COLUMNS: dict[str, str] = {
 #: the immobile model (one parameter fewer) wins unless the Brownian one beats it by 6.63. Per-track false
 #: alarms on Brownian tracks are checked in tests/test_classify.py and benchmarks/classify.py.
 DEFAULT_PENALTIES = {
-    "immobile": -0.5 * float(stats.chi2.ppf(0.99, 1)),
+    "immobile": -0.5 * float(special.chdtri(1, 1.0 - 0.99)),
     "normal": 0.0,
-    "anomalous": 0.5 * float(stats.chi2.ppf(0.95, 1)),
-    "confined": 0.5 * float(stats.chi2.ppf(0.99, 1)),
-    "directed": 0.5 * float(stats.chi2.ppf(0.99, 2)),
+    "anomalous": 0.5 * float(special.chdtri(1, 1.0 - 0.95)),
+    "confined": 0.5 * float(special.chdtri(1, 1.0 - 0.99)),
+    "directed": 0.5 * float(special.chdtri(2, 1.0 - 0.99)),
 }
 
 _MODEL_PARAMS = {"immobile": 1, "normal": 2, "anomalous": 3, "confined": 3, "directed": 4}
@@ -977,7 +977,7 @@ def _heterogeneity(log_a: np.ndarray, se: np.ndarray):
     w = 1.0 / se**2
     mean = np.sum(w * log_a) / w.sum()
     Q = float(np.sum(w * (log_a - mean) ** 2))
-    p = float(stats.chi2.sf(Q, n - 1))
+    p = float(special.chdtrc(n - 1, Q))  # chi-square survival function
     tau2 = max(0.0, (Q - (n - 1)) / (w.sum() - np.sum(w**2) / w.sum()))
     return Q / (n - 1), p, float(np.sqrt(tau2))
 
@@ -1297,7 +1297,9 @@ def sample_motion(
     for c in ("confined", "directed"):
         frac = counts[c] / n_fitted if n_fitted else 0.0
         numbers[f"fraction_{c}"] = float(frac)
-        p_binom = float(stats.binom.sf(counts[c] - 1, n_fitted, 0.05)) if n_fitted else 1.0
+        # P(X >= k) for X binomial(n, 0.05): the regularised incomplete beta function I_0.05(k, n - k + 1)
+        k_c = int(counts[c])
+        p_binom = float(special.betainc(k_c, n_fitted - k_c + 1, 0.05)) if n_fitted and k_c > 0 else 1.0
         numbers[f"fraction_{c}_p"] = p_binom
         if n_fitted and frac >= min_class_fraction and p_binom < 1e-3:
             flags.append(c)

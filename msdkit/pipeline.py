@@ -550,7 +550,7 @@ def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, A
 
 #: Modules every input needs after its file is read, in the order the stages need them: imported ahead by
 #: :func:`import_ahead` while the file is read.
-AHEAD_MODULES = ("msdkit._msd_kernels", "scipy.stats", "msdkit.drift", "msdkit.msd", "msdkit.fit",
+AHEAD_MODULES = ("msdkit._msd_kernels", "msdkit.drift", "msdkit.msd", "msdkit.fit",
                  "msdkit.motion_models", "msdkit.classify", "msdkit.sizing", "matplotlib.figure",
                  "matplotlib.backends.backend_agg", "msdkit.report.figures")
 _ahead_lock = threading.Lock()
@@ -572,7 +572,7 @@ def _import_all(names) -> None:
 def import_ahead() -> threading.Thread | None:
     """Import the analysis and figure modules on a background thread, once per process.
 
-    A fresh process spends seconds importing (scipy.stats, matplotlib, numba and its first cached kernel),
+    A fresh process spends seconds importing (scipy's parts, matplotlib, numba and its first cached kernel),
     almost all of it holding the GIL; reading a track table (pyarrow) and hashing it mostly do not.
     :func:`process_input` starts this right before reading a table and joins the thread after the read, so
     the imports run while the file is read and the two threads never import at the same time as the stages

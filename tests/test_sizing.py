@@ -591,3 +591,22 @@ def test_per_track_localisation_sd_falls_back_when_the_table_cannot_support_it()
     table.loc[table["track"] == 3, "precision_um"] = np.nan
     sd = sizing.precision_scaled_sd_um(table, **kw)
     assert sd.loc[3] == pytest.approx(float(np.median(sd.drop(3))))
+
+
+def test_prominent_peaks_match_scipy_find_peaks():
+    # Reference: scipy.signal.find_peaks(x, prominence=p) (general-purpose reference library), on random
+    # curves with flat tops, flat valleys, zero runs and ties, at several prominence thresholds.
+    from scipy.signal import find_peaks
+
+    g = np.random.default_rng()
+    for _ in range(300):
+        n = int(g.integers(3, 60))
+        x = np.round(g.random(n) * g.integers(1, 6), 1)  # few distinct values: plateaus and ties
+        x[g.random(n) < 0.2] = 0.0
+        for p in (0.0, 0.05, 0.2, 0.5, 1.0):
+            expected, _ = find_peaks(x, prominence=p)
+            assert np.array_equal(sizing._prominent_peaks(x, p), expected), (x.tolist(), p)
+    i = np.arange(160)
+    smooth = np.exp(-0.5 * ((i - 50) / 8.0) ** 2) + 0.4 * np.exp(-0.5 * ((i - 110) / 6.0) ** 2)
+    for p in (0.01, 0.1, 0.39, 0.41):
+        assert np.array_equal(sizing._prominent_peaks(smooth, p), find_peaks(smooth, prominence=p)[0])
