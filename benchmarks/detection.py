@@ -68,7 +68,8 @@ SCENES: dict[str, tuple[str, dict, int]] = {
     "noisy_camera": ("read noise 10 e-, offset 500", {"read_noise_electrons": 10.0, "offset_adu": 500}, 16),
     "8bit": ("8-bit data, gain 0.2 ADU/e-, offset 10", {"gain_adu_per_electron": 0.2, "offset_adu": 10}, 8),
     "very_dim": ("250 photons", {"photons": 250}, 16),
-    "low_snr": ("400 photons, bg 60, read noise 6 e-", {"photons": 400, "background_photons": 60, "read_noise_electrons": 6.0}, 16),
+    "low_snr": ("400 photons, bg 60, read noise 6 e-",
+                {"photons": 400, "background_photons": 60, "read_noise_electrons": 6.0}, 16),
     "exposure_25ms": ("exposure 25 ms of the 33 ms frame", {"exposure_s": 0.025}, 16),
     "full_exposure": ("exposure = frame interval (33 ms)", {"exposure_s": 1.0 / 30.0}, 16),
     "full_exposure_dim": ("exposure = frame interval, 600 photons, bg 60, read noise 6 e-",
@@ -344,7 +345,8 @@ def main() -> None:
         "mean over movies\n"
     )
     head = (
-        "| scene | what changes | D | radius | alpha | truth-level | perfect links | linking | tracks (long / for D) | "
+        "| scene | what changes | D | radius | alpha | truth-level | perfect links | linking | "
+        "tracks (long / for D) | "
         "spots/frame | recall | wrong joins | D at radius 3.8 / 4.2 / 4.6 SD |"
     )
     print(head)
@@ -360,7 +362,8 @@ def main() -> None:
             f"{pct(g['radius_nm'].mean(), RADIUS_TRUE_NM)} | {g['alpha'].mean():.3f} | "
             f"{pct(g['D_truth_level'].mean(), D_TRUE)} | {pct(g['D_perfect_links'].mean(), D_TRUE)} | "
             f"{100 * g['linking_effect'].mean():+.1f} | "
-            f"{g['n_tracks'].mean():.0f} / {g['n_tracks_D'].mean():.0f} | {g['spots_per_frame'].mean():.0f} | "
+            f"{g['n_tracks'].mean():.0f} / {g['n_tracks_D'].mean():.0f} | "
+            f"{g['spots_per_frame'].mean():.0f} | "
             f"{g['recall_in_focus'].mean():.2f} | "
             f"{100 * g['wrong_join_rate'].mean():.1f} % | {scan} |"
         )
@@ -368,11 +371,13 @@ def main() -> None:
         f"\nlargest |D error| over scenes: {100 * worst:.1f} %; per-movie D errors: mean "
         f"{100 * (df['D'] / D_TRUE - 1).mean():+.1f} %, SD {100 * (df['D'] / D_TRUE - 1).std():.1f} %; "
         f"linking alone: mean {100 * df['linking_effect'].mean():+.1f} %, largest scene mean "
-        f"{100 * df.groupby('scene')['linking_effect'].mean().abs().max():.1f} %; the 95 % interval of D holds the "
+        f"{100 * df.groupby('scene')['linking_effect'].mean().abs().max():.1f} %; "
+        "the 95 % interval of D holds the "
         f"truth in {int(((df['D_lo'] <= D_TRUE) & (D_TRUE <= df['D_hi'])).sum())} of {len(df)} movies"
     )
     print(
-        f"sample alpha: mean {df['alpha'].mean():.3f}, per-movie SD {df['alpha'].std():.3f}, its 95 % interval "
+        f"sample alpha: mean {df['alpha'].mean():.3f}, per-movie SD {df['alpha'].std():.3f}, "
+        "its 95 % interval "
         f"holds 1 in {int(((df['alpha_lo'] <= 1) & (1 <= df['alpha_hi'])).sum())} of {len(df)} movies; "
         f"movies with flags: "
         f"{', '.join(f'{r.scene}/{r.seed}: {r.flags}' for r in df.itertuples() if r.flags) or 'none'}"

@@ -212,8 +212,8 @@ class AnalysisConfig(BaseModel):
     # each track's own number of steps, and short tracks are mostly the small, fast particles)
     size_min_track_points: Annotated[int, Field(ge=2)] = 2
     # shortest tracks pooled into the sample D of a movie (at least 3: the covariance-based estimator needs
-    # two steps); the long-track filter linking.min_track_points keeps the slow, sharp particles that stayed in
-    # focus and the tracks lengthened by wrong joins, so pooling the short ones too is less biased
+    # two steps); the long-track filter linking.min_track_points keeps the slow, sharp particles that stayed
+    # in focus and the tracks lengthened by wrong joins, so pooling the short ones too is less biased
     sample_min_track_points: Annotated[int, Field(ge=3)] = 3
     seed: int = 0
 
@@ -262,13 +262,14 @@ class Config(BaseModel):
         seen: dict[str, Path] = {}
         for pattern in self.inputs:
             full = self.resolve_path(pattern)
-            matches = sorted(glob.glob(str(full), recursive=True)) if glob.has_magic(str(full)) else [str(full)]
+            matches = (sorted(glob.glob(str(full), recursive=True)) if glob.has_magic(str(full))
+                       else [str(full)])
             for m in matches:
                 seen.setdefault(str(Path(m).resolve()), Path(m))
         return list(seen.values())
 
     def output_path(self) -> Path:
-        """The output folder, resolved against the config folder."""
+        """Return the output folder, resolved against the config folder."""
         return self.resolve_path(self.output_dir)
 
 
@@ -289,7 +290,8 @@ def _model_at(loc: tuple) -> type[BaseModel] | None:
 def _format_errors(exc: ValidationError, source: str) -> str:
     lines = []
     for err in exc.errors():
-        loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and ("[" in p or p.startswith("function"))))
+        loc = tuple(p for p in err["loc"]
+                    if not (isinstance(p, str) and ("[" in p or p.startswith("function"))))
         # pydantic reports union branches; keep names of real keys only
         key_path = ".".join(str(p) for p in loc) or "(top level)"
         if err["type"] == "extra_forbidden":
@@ -297,7 +299,8 @@ def _format_errors(exc: ValidationError, source: str) -> str:
             hint = ""
             if model is not None:
                 near = difflib.get_close_matches(str(loc[-1]), _all_keys(model), n=1, cutoff=0.5)
-                hint = f" (did you mean '{near[0]}'?)" if near else f" (valid keys: {', '.join(_all_keys(model))})"
+                hint = (f" (did you mean '{near[0]}'?)" if near
+                        else f" (valid keys: {', '.join(_all_keys(model))})")
             lines.append(f"{source}: {key_path}: unknown key{hint}")
         elif err["type"] == "missing":
             lines.append(f"{source}: {key_path}: required key is missing")
@@ -309,7 +312,8 @@ def _format_errors(exc: ValidationError, source: str) -> str:
 def config_from_dict(data: dict, *, base_dir: str | Path = ".", source: str = "<config>") -> Config:
     """Validate a config given as a dict (as parsed from YAML)."""
     if not isinstance(data, dict):
-        raise ConfigError(f"{source}: the config must be a mapping of keys to values; got {type(data).__name__}.")
+        raise ConfigError(
+            f"{source}: the config must be a mapping of keys to values; got {type(data).__name__}.")
     try:
         return Config(**data, base_dir=str(base_dir), source=str(source))
     except ValidationError as exc:
@@ -327,7 +331,8 @@ def load_config(path: str | Path) -> Config:
     """
     p = Path(path)
     if not p.is_file():
-        raise ConfigError(f"{p}: config file not found. Give the path of a YAML file (see configs/demo.yaml).")
+        raise ConfigError(
+            f"{p}: config file not found. Give the path of a YAML file (see configs/demo.yaml).")
     try:
         data = yaml.safe_load(p.read_text(encoding="utf-8"))
     except yaml.YAMLError as exc:

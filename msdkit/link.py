@@ -474,7 +474,7 @@ def _gap_acceptance_sd(
     ends: np.ndarray, starts: np.ndarray, xy: np.ndarray, frames: np.ndarray, *, step_sd: float,
     drift: np.ndarray, g: int, acceptance_sd: float, n_frames: int, area_px2: float,
 ) -> float:
-    """Joining radius, in step SDs of a ``g``-frame step, for closing gaps of ``g - 1`` missed frames.
+    """Return the joining radius (step SDs of a ``g``-frame step) for closing gaps of ``g - 1`` missed frames.
 
     The distance at which a start is as likely the end's particle seen again as an unrelated new track,
     ``k^2 = 2 ln[P_g / (2 pi g s^2 rho_g)]`` (P_g: share of ends seen again after ``g`` frames, fitted by

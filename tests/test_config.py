@@ -24,7 +24,8 @@ def test_minimal_config_gets_working_defaults(tmp_path):
 
 def test_unknown_key_is_named_with_its_nearest_valid_key(tmp_path):
     p = _write(tmp_path, "inputs: [a.tif]\nacquisition:\n  pixel_size_umm: 0.1\n")
-    with pytest.raises(ConfigError, match=r"run\.yaml: acquisition\.pixel_size_umm: unknown key \(did you mean 'pixel_size_um'\?\)"):
+    expected = r"run\.yaml: acquisition\.pixel_size_umm: unknown key \(did you mean 'pixel_size_um'\?\)"
+    with pytest.raises(ConfigError, match=expected):
         load_config(p)
 
 

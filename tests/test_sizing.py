@@ -526,7 +526,8 @@ def test_lag1_estimates_and_robust_sigma_follow_the_bincount_sums():
     cum = np.cumsum(m[use][order]) / np.sum(m[use])
     med = math.sqrt(max(float(s2[use][order][np.searchsorted(cum, 0.5)]), 0.0))
     assert np.sum(use) >= 20
-    assert sizing.robust_localization_sd_um(table, min_adjacent_steps=3, **kw) == pytest.approx(med, rel=1e-12)
+    robust = sizing.robust_localization_sd_um(table, min_adjacent_steps=3, **kw)
+    assert robust == pytest.approx(med, rel=1e-12)
 
 
 def test_shared_step_sums_give_the_same_size_distribution_and_estimates():

@@ -260,7 +260,8 @@ def positions_to_tracks(
     DataFrame with columns track, frame, time_s, x_um, y_um (and z_um in 3D).
     """
     n_tracks, n_points, n_dims = positions.shape
-    lengths = np.full(n_tracks, n_points) if lengths is None else np.minimum(np.asarray(lengths, int), n_points)
+    lengths = (np.full(n_tracks, n_points) if lengths is None
+               else np.minimum(np.asarray(lengths, int), n_points))
     first = np.zeros(n_tracks, int) if first_frames is None else np.asarray(first_frames, int)
     keep = np.arange(n_points)[None, :] < lengths[:, None]
     track = np.broadcast_to(np.arange(n_tracks)[:, None] + first_track_id, keep.shape)[keep]
