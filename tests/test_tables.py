@@ -147,3 +147,29 @@ def test_empty_headerless_and_binary_files_are_refused(tmp_path):
     bad_parquet = _write(tmp_path, "track,frame\n", name="bad.parquet")
     with pytest.raises(InputError, match="not a readable Parquet file"):
         read_track_table(bad_parquet, frame_interval_s=1.0)
+
+
+def test_table_is_read_with_freed_memory_kept_and_the_settings_put_back(tmp_path, monkeypatch):
+    # numpy's huge-page advice would make the kernel assemble 2 MB pages for the table's new arrays
+    # (madvise(2), MADV_HUGEPAGE; msdkit._memory); the read runs without it and puts it back afterwards
+    from msdkit import _memory
+    from msdkit.io import tables
+
+    _simulated_tracks()[["track", "frame", "x_um", "y_um"]].to_parquet(tmp_path / "t.parquet", index=False)
+    seen = []
+    column = tables._column
+
+    def spy(*args, **kwargs):
+        seen.append(_memory.active())
+        return column(*args, **kwargs)
+
+    monkeypatch.setattr(tables, "_column", spy)
+    was = np._core.multiarray._set_madvise_hugepage(True)
+    try:
+        got = read_track_table(tmp_path / "t.parquet", frame_interval_s=0.05)
+        assert np._core.multiarray._set_madvise_hugepage(True) is True
+    finally:
+        np._core.multiarray._set_madvise_hugepage(was)
+    assert seen and all(seen)
+    assert not _memory.active()
+    assert len(got) == 30 * 50
