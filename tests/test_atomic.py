@@ -96,6 +96,30 @@ def test_writers_round_trip_tables_and_bytes(tmp_path):
     assert (tmp_path / "b.bin").read_bytes() == b"\x00\x01"
 
 
+
+def test_parquet_columns_that_zstd_shrinks_keep_it_and_random_doubles_get_snappy(tmp_path):
+    # Parquet stores a codec per column chunk (Apache Parquet format, ColumnMetaData.codec); read back with
+    # pyarrow's reader, the table is the same whichever codec each column got
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(4)
+    n = 200_000
+    df = pd.DataFrame({
+        "track": np.repeat(np.arange(n // 500, dtype=np.int64), 500),
+        "frame": np.tile(np.arange(500, dtype=np.int64), n // 500),
+        "x_um": rng.normal(0.0, 5.0, n),  # full-precision random doubles: zstd saves ~3 %
+        "tag": ["a", "b"] * (n // 2),
+    })
+    write_parquet_atomic(df, tmp_path / "t.parquet")
+    meta = pq.ParquetFile(tmp_path / "t.parquet").metadata
+    codecs = {meta.schema.column(i).name: meta.row_group(0).column(i).compression for i in range(4)}
+    assert codecs == {"track": "ZSTD", "frame": "ZSTD", "x_um": "SNAPPY", "tag": "ZSTD"}
+    pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "t.parquet"), df)
+    write_parquet_atomic(df, tmp_path / "z.parquet", compression="zstd")  # one codec for all, as asked
+    meta = pq.ParquetFile(tmp_path / "z.parquet").metadata
+    assert {meta.row_group(0).column(i).compression for i in range(4)} == {"ZSTD"}
+    pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "z.parquet"), df)
+
 def _edge_and_random_floats(n, seed):
     """Edge values of IEEE 754 doubles and random numbers over the whole double range."""
     g = np.random.default_rng(seed)

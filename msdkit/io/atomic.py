@@ -161,12 +161,54 @@ def write_csv_atomic(df, path: str | os.PathLike, *, index: bool = False, **to_c
     )
 
 
-def write_parquet_atomic(df, path: str | os.PathLike, *, compression: str = "zstd") -> Path:
-    """Write a DataFrame to Parquet atomically with pyarrow (the index is not stored)."""
+#: Share of its size that zstd must save on a column's first values for the column to be stored with zstd;
+#: columns it barely shrinks (measured positions: random low digits, 3 % saved at 2-3 x the cost of snappy)
+#: get snappy.
+ZSTD_MIN_SAVING = 0.1
+_CODEC_SAMPLE_BYTES = 1 << 20
+
+
+def parquet_codecs(table) -> dict[str, str]:
+    """Compression of each column of a pyarrow Table: ``zstd`` where it pays, ``snappy`` elsewhere.
+
+    Each column's first ``_CODEC_SAMPLE_BYTES`` of values are compressed with zstd once (a few ms); a column
+    that loses less than :data:`ZSTD_MIN_SAVING` of its size gets snappy, which costs a fraction of the time
+    on data that does not compress (20,000-track table: track, frame and time_s shrink 100-fold with zstd;
+    x_um and y_um by 3 %, for 0.25 s of the 0.45 s the whole write takes). Decoded, the file is the same
+    whichever codecs it holds; both are in every Parquet reader.
+    """
+    import pyarrow as pa
+
+    codecs = {}
+    for name, column in zip(table.column_names, table.columns, strict=True):
+        codec = "zstd"
+        typ = column.type
+        if (pa.types.is_integer(typ) or pa.types.is_floating(typ)) and column.num_chunks and len(column):
+            width = typ.bit_width // 8
+            first = column.chunk(0)
+            sample = first.slice(0, min(len(first), _CODEC_SAMPLE_BYTES // width))
+            if sample.null_count == 0 and len(sample):
+                raw = sample.buffers()[1]
+                raw = raw[sample.offset * width : (sample.offset + len(sample)) * width]
+                packed = pa.compress(raw, codec="zstd", asbytes=False)
+                if packed.size > (1 - ZSTD_MIN_SAVING) * raw.size:
+                    codec = "snappy"
+        codecs[name] = codec
+    return codecs
+
+
+def write_parquet_atomic(df, path: str | os.PathLike, *, compression: str | dict | None = None) -> Path:
+    """Write a DataFrame to Parquet atomically with pyarrow (the index is not stored).
+
+    ``compression``: a codec for every column, a dict by column, or None: each column's own
+    (:func:`parquet_codecs`: zstd where it pays, snappy elsewhere).
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     table = pa.Table.from_pandas(df, preserve_index=False)
+    if compression is None:
+        compression = parquet_codecs(table)
     with _atomic_path(path) as tmp:
         # plain encoding: dictionaries of ten-million-row float (and id) columns cost time and do not
         # shrink them
