@@ -553,20 +553,30 @@ def _write_outputs(stack_dir: Path, result: AnalysisResult, summary: dict[str, A
 AHEAD_MODULES = ("msdkit._msd_kernels", "msdkit.drift", "msdkit.msd", "msdkit.fit",
                  "msdkit.motion_models", "msdkit.classify", "msdkit.sizing", "matplotlib.figure",
                  "matplotlib.backends.backend_agg", "msdkit.report.figures")
+#: Names of the modules among them that only the figures need (written after the analysis).
+FIGURE_MODULE_PREFIXES = ("matplotlib", "msdkit.report")
 _ahead_lock = threading.Lock()
 _ahead_thread: threading.Thread | None = None
+_analysis_modules_loaded = threading.Event()
 
 
-def _import_all(names) -> None:
+def _import_all(names, analysis_loaded: threading.Event | None = None) -> None:
+    """Import ``names`` in order; set ``analysis_loaded`` before the first figure module (or at the end)."""
     import importlib
 
-    for name in names:
-        try:
-            module = importlib.import_module(name)
-            if name == "msdkit._msd_kernels":  # numba's first cached kernel loads its code generator
-                module.scan_order(np.zeros(2, np.int64), np.zeros(2, np.int64))
-        except Exception:  # noqa: BLE001  (the stage that needs the module imports it again and reports)
-            log.debug("importing %s ahead failed", name, exc_info=True)
+    try:
+        for name in names:
+            if analysis_loaded is not None and name.startswith(FIGURE_MODULE_PREFIXES):
+                analysis_loaded.set()
+            try:
+                module = importlib.import_module(name)
+                if name == "msdkit._msd_kernels":  # numba's first cached kernel loads its code generator
+                    module.scan_order(np.zeros(2, np.int64), np.zeros(2, np.int64))
+            except Exception:  # noqa: BLE001  (the stage that needs the module imports it again and reports)
+                log.debug("importing %s ahead failed", name, exc_info=True)
+    finally:
+        if analysis_loaded is not None:
+            analysis_loaded.set()
 
 
 def import_ahead() -> threading.Thread | None:
@@ -574,11 +584,13 @@ def import_ahead() -> threading.Thread | None:
 
     A fresh process spends seconds importing (scipy's parts, matplotlib, numba and its first cached kernel),
     almost all of it holding the GIL; reading a track table (pyarrow) and hashing it mostly do not.
-    :func:`process_input` starts this right before reading a table and joins the thread after the read, so
-    the imports run while the file is read and the two threads never import at the same time as the stages
-    run (concurrent imports of modules that import each other can fail). Nothing is started when the process
-    may use only one thread (:func:`msdkit._threads.analysis_threads`: worker processes of a batch) or when
-    every module is already loaded. Returns the thread (or None).
+    :func:`process_input` starts this right before reading a table, so the imports run while the file is
+    read. The analysis modules come first: the stages start when they are loaded
+    (:func:`wait_for_analysis_modules`), while the thread goes on with the figure modules (matplotlib: 0.5 s,
+    needed only when the outputs are written; it shares no module with the stages' imports that is not loaded
+    by then, so neither waits for the other's imports); the outputs wait for the whole thread. Nothing is
+    started when the process may use only one thread (:func:`msdkit._threads.analysis_threads`: worker
+    processes of a batch) or when every module is already loaded. Returns the thread (or None).
     """
     global _ahead_thread
     import sys
@@ -591,10 +603,16 @@ def import_ahead() -> threading.Thread | None:
         missing = [m for m in AHEAD_MODULES if m not in sys.modules]
         if not missing or analysis_threads() < 2:
             return None
-        _ahead_thread = threading.Thread(target=_import_all, args=(missing,), name="msdkit-import",
-                                         daemon=True)
+        _ahead_thread = threading.Thread(target=_import_all, args=(missing, _analysis_modules_loaded),
+                                         name="msdkit-import", daemon=True)
         _ahead_thread.start()
         return _ahead_thread
+
+
+def wait_for_analysis_modules(ahead: threading.Thread | None) -> None:
+    """Wait until the thread of :func:`import_ahead` has loaded the stages' modules (not the figures')."""
+    if ahead is not None:
+        _analysis_modules_loaded.wait()
 
 
 def process_input(
@@ -615,6 +633,7 @@ def process_input(
     input_path = Path(input_path)
     if not input_path.exists():
         raise InputError(f"{input_path}: input file not found. Check the inputs list and the config's folder.")
+    ahead = None
     if input_path.suffix.lower() in TABLE_SUFFIXES:
         from .io.tables import read_track_table
 
@@ -625,8 +644,7 @@ def process_input(
         t_read = time.perf_counter()
         tracks = read_track_table(input_path, pixel_size_um=cfg.acquisition.pixel_size_um, frame_interval_s=dt)
         log.info("%s: read %d positions in %.2f s", stack_name, len(tracks), time.perf_counter() - t_read)
-        if ahead is not None:
-            ahead.join()  # the stages import nothing while another thread does
+        wait_for_analysis_modules(ahead)  # the figure modules go on loading beside the first stages
         exposure = cfg.acquisition.exposure_s if cfg.acquisition.exposure_s is not None else dt
         used: dict[str, Any] = {"acquisition": {"pixel_size_um": cfg.acquisition.pixel_size_um,
                                                 "frame_interval_s": dt, "exposure_s": exposure}}
@@ -676,6 +694,8 @@ def process_input(
     resolved["provenance"] = provenance
     t_outputs = time.perf_counter()
     log.info("%s: analysed in %.2f s", stack_name, t_outputs - t_analysis)
+    if ahead is not None:
+        ahead.join()  # the figure modules: loaded beside the analysis
     _write_outputs(stack_dir, result, summary, resolved)
     log.info("%s: outputs written in %.2f s", stack_name, time.perf_counter() - t_outputs)
     s = result.summary
