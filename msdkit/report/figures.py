@@ -65,7 +65,7 @@ def stack_overview_png(
     fig = _figure(figsize=(17, 3.9))
     axes = fig.subplots(1, 4)
     ax = axes[0]
-    classes = track_fits.set_index("track")["motion_class"] if "motion_class" in track_fits else None
+    has_classes = "motion_class" in track_fits
     palette = {"normal": "#4c72b0", "subdiffusive": "#c44e52", "superdiffusive": "#dd8452",
                "confined": "#8172b3", "directed": "#55a868", "immobile": "#7f7f7f", "undetermined": "#bbbbbb"}
     from matplotlib.collections import LineCollection
@@ -81,8 +81,12 @@ def stack_overview_png(
         for tid, g in shown.groupby("track", sort=False):
             ids.append(tid)
             segments.append(np.column_stack([g["x_um"].to_numpy(float), g["y_um"].to_numpy(float)]))
-    cls_of = classes.to_dict() if classes is not None else {}
-    colours = [palette.get(cls_of.get(tid, "undetermined") if classes is not None else "normal", "#4c72b0")
+    cls_of = {}
+    if has_classes:  # the shown tracks' classes only (a dict of all 20,000 costs more than the lookups)
+        rows = track_fits["track"].isin(ids).to_numpy()
+        cls_of = dict(zip(track_fits["track"][rows].tolist(), track_fits["motion_class"][rows].tolist(),
+                          strict=True))
+    colours = [palette.get(cls_of.get(tid, "undetermined") if has_classes else "normal", "#4c72b0")
                for tid in ids]
     if segments:  # one collection for all shown tracks draws much faster than one line each
         ax.add_collection(LineCollection(segments, colors=colours, linewidths=0.6))
