@@ -156,8 +156,10 @@ def peak_rss_mb(who=resource.RUSAGE_SELF) -> float:
     return resource.getrusage(who).ru_maxrss / 1024.0
 
 
-def run_cli(table: Path) -> tuple[float, float, float]:
-    """``msdkit run`` on the table in a fresh process: wall, the input's own time (its log line) and CPU time.
+def run_cli(table: Path) -> tuple[float, float, float, str]:
+    """``msdkit run`` on the table in a fresh process: wall, the input's own time (its log line), CPU time
+    and the parts its log gives (read; analysis, with any wait for imports; outputs; the rest is start-up,
+    report and exit).
 
     Peak memory: RUSAGE_CHILDREN after it.
     """
@@ -179,7 +181,16 @@ def run_cli(table: Path) -> tuple[float, float, float]:
         found = re.findall(r"big: ok.*\(([0-9.]+) s\)", done.stdout + done.stderr)
         after = resource.getrusage(resource.RUSAGE_CHILDREN)
         cpu = (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime)
-        return wall, (float(found[-1]) if found else float("nan")), cpu
+        log = (Path(tmp) / "out" / "msdkit.log").read_text(encoding="utf-8")
+        parts = {key: re.findall(pattern, log) for key, pattern in (
+            ("read", r"big: read \d+ positions in ([0-9.]+) s"),
+            ("analysed", r"big: analysed in ([0-9.]+) s"),
+            ("outputs", r"big: outputs written in ([0-9.]+) s"))}
+        shown = ", ".join(f"{k} {float(v[-1]):.2f} s" for k, v in parts.items() if v)
+        if all(parts.values()):
+            rest = wall - sum(float(v[-1]) for v in parts.values())
+            shown += f", the rest (start-up, summary, report, exit) {rest:.2f} s"
+        return wall, (float(found[-1]) if found else float("nan")), cpu, shown
 
 
 def main() -> None:
@@ -196,7 +207,7 @@ def main() -> None:
     if not args.skip_big and not path.exists():
         print("writing", path)
         make_big_table(path)
-    runs: list[tuple[float, float, float]] = []
+    runs: list[tuple[float, float, float, str]] = []
     rss_run = None
     if args.run and not args.skip_big:
         # first, while this process is small: a forked child's peak memory counts the parent's at the fork.
@@ -246,11 +257,12 @@ def main() -> None:
           f"{LAST_THREADS[1]:.2f} when it started)")
     print(f"  peak resident memory: {rss_read:.0f} MB after reading, {peak_rss_mb():.0f} MB after the stages "
           f"(table {tracks.memory_usage(deep=True).sum() / 2**20:.0f} MB)")
-    for label, (wall, own, cpu) in zip(("first", "second"), runs, strict=False):
+    for label, (wall, own, cpu, parts) in zip(("first", "second"), runs, strict=False):
         print(f"  msdkit run, {label} (fresh process, all outputs) {wall:7.2f} s  {wall / base:5.1f} x "
               f"(read+floor); the input itself (read, analysis, outputs) {own:.2f} s, the rest (start-up, "
               f"imports, compiled-kernel cache, checksums, report) {wall - own:.2f} s; CPU {cpu:.2f} s = "
               f"{cpu / base_cpu:.1f} x (read+floor CPU)")
+        print(f"    its log: {parts}")
     if runs:
         print(f"  msdkit run peak resident memory {rss_run:.0f} MB")
     print("load average at the end " + " ".join(f"{v:.2f}" for v in os.getloadavg()))
