@@ -35,6 +35,12 @@ _LIMIT_VARS = ("OMP_NUM_THREADS", "NUMBA_NUM_THREADS")
 MIN_ROWS_FOR_THREADS = 100_000
 
 
+def _threads_set_by_user() -> int | None:
+    """Return the thread count ``MSDKIT_THREADS`` sets (a whole number >= 1), or None."""
+    chosen = os.environ.get(THREADS_VAR, "").strip()
+    return int(chosen) if chosen.isdigit() and int(chosen) >= 1 else None
+
+
 def analysis_threads(*, load: float | None = None) -> int:
     """Threads one analysis may use (>= 1).
 
@@ -54,9 +60,9 @@ def analysis_threads(*, load: float | None = None) -> int:
         value = os.environ.get(var, "").strip()
         if value.isdigit() and int(value) >= 1:
             n = min(n, int(value))
-    chosen = os.environ.get(THREADS_VAR, "").strip()
-    if chosen.isdigit() and int(chosen) >= 1:
-        return max(1, min(n, int(chosen)))
+    chosen = _threads_set_by_user()
+    if chosen is not None:
+        return max(1, min(n, chosen))
     if load is None:
         try:
             load = os.getloadavg()[0]
@@ -79,7 +85,7 @@ class Beside:
 
     def __init__(self, threads: int | None = None, *, rows: int | None = None) -> None:
         n = analysis_threads() if threads is None else int(threads)
-        forced = os.environ.get(THREADS_VAR, "").strip().isdigit()
+        forced = _threads_set_by_user() is not None
         if threads is None and rows is not None and rows < MIN_ROWS_FOR_THREADS and not forced:
             n = 1  # a small table (``rows`` positions): see MIN_ROWS_FOR_THREADS
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="msdkit-stage") if n > 1 else None
