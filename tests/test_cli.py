@@ -69,6 +69,8 @@ def test_run_as_a_program_ends_with_the_batch_exit_code_and_every_output_written
 
 
 def test_process_is_not_ended_while_a_thread_it_would_wait_for_runs():
+    # Contract (msdkit.cli.end_process): the interpreter waits for non-daemon threads at exit, so the
+    # process is ended early only when none is running (Python docs, threading: daemon threads).
     import threading
 
     from msdkit.cli import end_process

@@ -171,6 +171,8 @@ def test_analysis_and_figure_modules_are_imported_ahead_on_a_background_thread()
 
 
 def test_stages_start_once_their_modules_are_loaded_and_figure_modules_follow():
+    # Contract (msdkit.pipeline.import_ahead): the stages wait only for their own modules, the figure modules
+    # load after them on the same thread.
     import os
     import subprocess
     import sys

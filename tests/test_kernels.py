@@ -444,6 +444,7 @@ def test_size_fit_products_equal_in_order_sums_and_numpy_matmul(shape):
 
 
 def test_size_fit_density_floor_keeps_nan_as_numpy_maximum():
+    # Reference: numpy.maximum (general-purpose reference library), which keeps NaN.
     L = np.array([[np.nan, 1.0], [0.0, 0.0], [1e-310, 0.0]])
     got = k.mixture_density(np.ascontiguousarray(L.T), np.ones(2), 1e-300, np.empty(3))
     want = np.maximum(L @ np.ones(2), 1e-300)  # numpy.maximum propagates NaN

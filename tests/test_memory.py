@@ -36,6 +36,7 @@ def test_freed_large_array_pages_are_reused_inside_the_block():
 
 
 def test_settings_are_restored_after_the_outermost_block():
+    # Contract (msdkit._memory.freed_memory_kept): numpy's huge-page setting is put back on leaving.
     was = np._core.multiarray._set_madvise_hugepage(True)
     try:
         with _memory.freed_memory_kept():
@@ -50,6 +51,7 @@ def test_settings_are_restored_after_the_outermost_block():
 
 
 def test_switch_variable_zero_leaves_everything_as_it_is(monkeypatch):
+    # Contract (msdkit._memory.SWITCH_VAR): "0" turns the block into one that changes nothing.
     monkeypatch.setenv(_memory.SWITCH_VAR, "0")
     was = np._core.multiarray._set_madvise_hugepage(True)
     try:
